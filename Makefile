@@ -1,0 +1,32 @@
+# The two set-up commands of the README: `make demo` and `make test`.
+PYTHON ?= python3
+VENV ?= .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+
+.PHONY: setup test demo lint check clean
+
+$(STAMP): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[test,plots]'
+	touch $(STAMP)
+
+setup: $(STAMP)
+
+## make test: set up the virtual environment and run lint, types and the whole test suite.
+test: $(STAMP)
+	$(BIN)/ruff check daemon simulator tests
+	$(BIN)/mypy
+	$(BIN)/python -m pytest
+
+## make demo: set up and run the whole loop on the embedded default scenario.
+demo: $(STAMP)
+	$(BIN)/trimtab-sim demo
+
+lint: $(STAMP)
+	$(BIN)/ruff check daemon simulator tests
+	$(BIN)/mypy
+
+clean:
+	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache build *.egg-info

@@ -1,0 +1,43 @@
+"""The one error family of trimtab. This module imports nothing else of ours."""
+
+from __future__ import annotations
+
+
+class TrimtabError(Exception):
+    """Base of every error trimtab raises on purpose."""
+
+
+class ModelError(TrimtabError):
+    """A model cannot be built, fitted or updated as asked (e.g. an unsolvable fit)."""
+
+
+class DataError(TrimtabError):
+    """Input data (a CSV, a stream file, a model-state file) is malformed; says where."""
+
+
+class ConfigError(TrimtabError):
+    """A configuration file is missing, unreadable, or fails validation.
+
+    ``errors`` holds one line per problem, each naming the field path and the rule.
+    """
+
+    def __init__(self, message: str, errors: list[str] | None = None) -> None:
+        super().__init__(message)
+        self.errors: list[str] = list(errors) if errors else [message]
+
+
+class DecodeError(TrimtabError):
+    """A message payload or topic cannot be decoded. ``reason`` is a stable snake_case word."""
+
+    def __init__(self, reason: str, detail: str = "") -> None:
+        super().__init__(f"{reason}: {detail}" if detail else reason)
+        self.reason = reason
+        self.detail = detail
+
+
+class StateError(TrimtabError):
+    """Persistent state (journal, checkpoint) is unreadable or inconsistent."""
+
+
+class TransportError(TrimtabError):
+    """The MQTT transport failed in a way the caller must hear about (e.g. TLS set-up)."""

@@ -1,0 +1,1 @@
+"""One module a sub-command of trimtab-sim."""
