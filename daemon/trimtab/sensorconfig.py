@@ -1,0 +1,401 @@
+"""The ``[sensors]`` section, and the pieces every section of the config is built from.
+
+Shared pieces: strictly typed scalars, the ``Section`` base (unknown keys forbidden, frozen,
+finite floats), :func:`refuse` for cross-field rules that keep each problem's own path, and
+:func:`expand_errors`, which turns a pydantic ``ValidationError`` into (path, message) pairs.
+"""
+
+from __future__ import annotations
+
+import difflib
+import json
+import re
+import types
+from collections.abc import Iterator
+from typing import Annotated, Any, Literal, Union, get_args, get_origin
+
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    ConfigDict,
+    Field,
+    PrivateAttr,
+    Strict,
+    ValidationError,
+    ValidatorFunctionWrapHandler,
+    WrapValidator,
+    field_validator,
+    model_validator,
+)
+from pydantic_core import PydanticCustomError
+
+from trimtab.errors import DecodeError
+from trimtab.terms import TermSpec
+from trimtab.topics import SENSOR_ID_PATTERN, validate_sensor_id
+
+__all__ = [
+    "Bool",
+    "InputName",
+    "Loc",
+    "NonNegFloat",
+    "PosFloat",
+    "PosInt",
+    "Problems",
+    "Section",
+    "SensorId",
+    "SensorOverride",
+    "SensorSettings",
+    "SensorsSettings",
+    "SharedReference",
+    "Str",
+    "dotted",
+    "expand_errors",
+    "refuse",
+]
+
+Loc = tuple[str | int, ...]
+Problems = list[tuple[Loc, str]]
+_RULE = "config_rule"
+INPUT_NAME_PATTERN = r"^[a-z][a-z0-9_]{0,31}$"
+
+
+def refuse(problems: Problems) -> None:
+    """Raise the cross-field problems of one section as one error that keeps each path."""
+    if problems:
+        raise PydanticCustomError(_RULE, "{first}", {"first": problems[0][1], "problems": problems})
+
+
+def _sensor_id(value: str) -> str:
+    try:
+        return validate_sensor_id(value)
+    except DecodeError as exc:
+        raise ValueError(exc.detail) from None
+
+
+def _input_name(value: str) -> str:
+    if not re.fullmatch(INPUT_NAME_PATTERN, value) or value == "elapsed_days":
+        raise ValueError(
+            f"input name {value!r} must be 1-32 of a-z 0-9 _ starting with a letter, "
+            "and not 'elapsed_days'"
+        )
+    return value
+
+
+def _prior(value: Any, handler: ValidatorFunctionWrapHandler) -> Any:
+    try:
+        return handler(value)
+    except ValidationError:
+        raise PydanticCustomError(
+            "prior", 'must be "factory" or a list of numbers, intercept first'
+        ) from None
+
+
+Bool = Annotated[bool, Strict()]
+Str = Annotated[str, Strict(), Field(min_length=1, max_length=4096)]
+PosFloat = Annotated[float, Strict(), Field(gt=0)]
+NonNegFloat = Annotated[float, Strict(), Field(ge=0)]
+PosInt = Annotated[int, Strict(), Field(ge=1)]
+SensorId = Annotated[
+    str,
+    Strict(),
+    AfterValidator(_sensor_id),
+    Field(json_schema_extra={"pattern": SENSOR_ID_PATTERN}),
+]
+InputName = Annotated[str, Strict(), AfterValidator(_input_name), Field(pattern=INPUT_NAME_PATTERN)]
+FieldName = Annotated[str, Strict(), Field(pattern=r"^[^\x00-\x1f]{1,64}$")]
+Prior = Annotated[
+    Literal["factory"] | tuple[Annotated[float, Strict()], ...], WrapValidator(_prior)
+]
+
+
+class Section(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
+
+
+_SETTINGS_DOC = {
+    "inputs": 'model inputs; the first is "raw", the others covariates',
+    "products": 'pairs of inputs multiplied, e.g. [["raw", "temp"]]',
+    "squares": "inputs squared",
+    "elapsed": "add a drift term: days since the model's origin",
+    "prior": '"factory" (ŷ = raw) or the k + 1 prior weights, intercept first, standardised',
+    "penalise_intercept": "pull the intercept toward the prior too",
+    "initial_state": "model-state file from `trimtab fit` to start from",
+    "centre": "input → centre used to standardise it (with scale)",
+    "scale": "input → scale (> 0) used to standardise it (with centre)",
+    "scaler_readings": "readings that fix centre and scale when neither is configured",
+}
+
+
+class SensorSettings(Section):
+    """One sensor's model: its terms, prior and how its features are standardised."""
+
+    inputs: tuple[InputName, ...] = Field(default=("raw",), description=_SETTINGS_DOC["inputs"])
+    products: tuple[tuple[InputName, InputName], ...] = Field(
+        default=(), description=_SETTINGS_DOC["products"]
+    )
+    squares: tuple[InputName, ...] = Field(default=(), description=_SETTINGS_DOC["squares"])
+    elapsed: Bool = Field(default=False, description=_SETTINGS_DOC["elapsed"])
+    prior: Prior = Field(default="factory", description=_SETTINGS_DOC["prior"])
+    penalise_intercept: Bool = Field(default=False, description=_SETTINGS_DOC["penalise_intercept"])
+    initial_state: Str | None = Field(default=None, description=_SETTINGS_DOC["initial_state"])
+    centre: dict[InputName, Annotated[float, Strict()]] | None = Field(
+        default=None, description=_SETTINGS_DOC["centre"]
+    )
+    scale: dict[InputName, PosFloat] | None = Field(
+        default=None, description=_SETTINGS_DOC["scale"]
+    )
+    scaler_readings: Annotated[int, Strict(), Field(ge=2, le=1000000)] = Field(
+        default=100, description=_SETTINGS_DOC["scaler_readings"]
+    )
+
+    def term_count(self) -> int:
+        """k, the number of terms (the model has k + 1 weights)."""
+        return len(self.inputs) + len(self.products) + len(self.squares) + int(self.elapsed)
+
+    def term_spec(self) -> TermSpec:
+        """The model's terms as :class:`trimtab.terms.TermSpec`."""
+        return TermSpec(self.inputs, self.products, self.squares, self.elapsed)
+
+    @model_validator(mode="after")
+    def _rules(self) -> SensorSettings:
+        refuse(_settings_problems(self))
+        return self
+
+
+def _settings_problems(s: SensorSettings) -> Problems:
+    p: Problems = []
+    if not s.inputs or s.inputs[0] != "raw":
+        p.append((("inputs",), f'the first input must be "raw", got {list(s.inputs)}'))
+    for name, items in (("inputs", list(s.inputs)), ("squares", list(s.squares))):
+        dupes = sorted({x for x in items if items.count(x) > 1})
+        if dupes:
+            p.append(((name,), f"listed more than once: {dupes}"))
+    known = set(s.inputs)
+    seen: set[frozenset[str]] = set()
+    for i, (a, b) in enumerate(s.products):
+        unknown = [x for x in (a, b) if x not in known]
+        if unknown:
+            p.append((("products", i), f"{unknown[0]!r} is not one of inputs {list(s.inputs)}"))
+        elif a == b:
+            p.append((("products", i), f"{a}·{a} is a square; list {a!r} in squares"))
+        elif frozenset((a, b)) in seen:
+            p.append((("products", i), f"the product {a}·{b} is listed twice"))
+        seen.add(frozenset((a, b)))
+    for i, x in enumerate(s.squares):
+        if x not in known:
+            p.append((("squares", i), f"{x!r} is not one of inputs {list(s.inputs)}"))
+    if not isinstance(s.prior, str) and len(s.prior) != s.term_count() + 1:
+        p.append(
+            (
+                ("prior",),
+                f"{len(s.prior)} weights given; the model has k + 1 = "
+                f"{s.term_count() + 1} (intercept first, then one per term)",
+            )
+        )
+    if (s.centre is None) != (s.scale is None):
+        p.append((("scale" if s.scale is None else "centre",), "centre and scale go together"))
+    for name in ("centre", "scale"):
+        table = getattr(s, name)
+        if table is not None and set(table) != known:
+            p.append(
+                ((name,), f"must give exactly the inputs {sorted(known)}, got {sorted(table)}")
+            )
+    if s.initial_state is not None and s.centre is not None:
+        p.append(
+            (
+                ("initial_state",),
+                "an initial state carries its own centre and scale; remove centre and scale",
+            )
+        )
+    return p
+
+
+class SensorOverride(Section):
+    """Per-sensor replacements for keys of ``[sensors.defaults]``; unset keys inherit."""
+
+    inputs: tuple[InputName, ...] | None = None
+    products: tuple[tuple[InputName, InputName], ...] | None = None
+    squares: tuple[InputName, ...] | None = None
+    elapsed: Bool | None = None
+    prior: Prior | None = None
+    penalise_intercept: Bool | None = None
+    initial_state: Str | None = None
+    centre: dict[InputName, Annotated[float, Strict()]] | None = None
+    scale: dict[InputName, PosFloat] | None = None
+    scaler_readings: Annotated[int, Strict(), Field(ge=2, le=1000000)] | None = None
+
+
+class SharedReference(Section):
+    """One reference stream serving several co-located sensors."""
+
+    source: SensorId = Field(description="the id the reference stream publishes under")
+    serves: tuple[SensorId, ...] = Field(min_length=1, description="sensors it serves")
+
+
+class SensorsSettings(Section):
+    """Which sensors this daemon serves, their model settings, and shared reference streams."""
+
+    ids: tuple[SensorId, ...] = Field(default=(), description="sensor ids served")
+    pattern: Str | None = Field(
+        default=None, description="regex; ids it matches in full are served too"
+    )
+    defaults: SensorSettings = Field(default_factory=lambda: SensorSettings())
+    overrides: dict[SensorId, SensorOverride] = Field(
+        default={}, description="sensor id → a table of any keys of sensors.defaults"
+    )
+    shared_references: tuple[SharedReference, ...] = Field(
+        default=(), description="reference streams serving several sensors"
+    )
+    _regex: re.Pattern[str] | None = PrivateAttr(None)
+    _resolved: dict[str, SensorSettings] = PrivateAttr(default_factory=dict)
+    _targets: dict[str, tuple[str, ...]] = PrivateAttr(default_factory=dict)
+
+    @field_validator("pattern")
+    @classmethod
+    def _pattern(cls, value: str | None) -> str | None:
+        if value is not None:
+            try:
+                re.compile(value)
+            except re.error as exc:
+                raise ValueError(f"not a regular expression: {exc}") from None
+        return value
+
+    def allowed(self, sensor_id: str) -> bool:
+        """Whether a sensor is served: listed in ids or matched in full by pattern."""
+        if sensor_id in self.ids:
+            return True
+        if self._regex is None or self._regex.fullmatch(sensor_id) is None:
+            return False
+        try:
+            validate_sensor_id(sensor_id)
+        except DecodeError:
+            return False
+        return True
+
+    @model_validator(mode="after")
+    def _rules(self) -> SensorsSettings:
+        p: Problems = []
+        self._regex = re.compile(self.pattern) if self.pattern is not None else None
+        if not self.ids and self.pattern is None:
+            p.append((("ids",), "give ids, pattern or both; with neither no sensor is served"))
+        dupes = sorted({x for x in self.ids if self.ids.count(x) > 1})
+        if dupes:
+            p.append((("ids",), f"listed more than once: {dupes}"))
+        for sid, override in self.overrides.items():
+            if not self.allowed(sid):
+                p.append((("overrides", sid), _not_served(sid, self.pattern)))
+                continue
+            merged = {**self.defaults.model_dump(), **override.model_dump(exclude_unset=True)}
+            try:
+                self._resolved[sid] = SensorSettings.model_validate(merged)
+            except ValidationError as exc:
+                p.extend(
+                    (("overrides", sid, *loc), msg)
+                    for loc, msg in expand_errors(exc, SensorSettings)
+                )
+        served_by: dict[str, str] = {}
+        for i, ref in enumerate(self.shared_references):
+            if ref.source in self._targets:
+                p.append((("shared_references", i, "source"), f"{ref.source!r} is listed twice"))
+            self._targets[ref.source] = ref.serves
+            for j, sid in enumerate(ref.serves):
+                where: Loc = ("shared_references", i, "serves", j)
+                if not self.allowed(sid):
+                    p.append((where, _not_served(sid, self.pattern)))
+                elif sid in served_by:
+                    p.append((where, f"{sid!r} is already served by {served_by[sid]!r}"))
+                served_by[sid] = ref.source
+        refuse(p)
+        return self
+
+
+def _not_served(sid: str, pattern: str | None) -> str:
+    how = f"nor matched by sensors.pattern {pattern!r}" if pattern else "and no pattern is set"
+    return f"sensor {sid!r} is not listed in sensors.ids {how}"
+
+
+_BARE = re.compile(r"^[A-Za-z0-9_-]+$")
+
+
+def key(part: str) -> str:
+    """A TOML key, quoted when it is not bare."""
+    return part if _BARE.fullmatch(part) else json.dumps(part)
+
+
+def dotted(loc: Loc) -> str:
+    """A pydantic location as a dotted TOML path: ``sensors.overrides."pm.01".inputs[0]``."""
+    out = ""
+    for part in loc:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        else:
+            out += ("." if out else "") + key(part)
+    return out or "(top level)"
+
+
+def _unwrap(tp: Any) -> Any:
+    while True:
+        if get_origin(tp) is Annotated:
+            tp = get_args(tp)[0]
+        elif get_origin(tp) in (Union, types.UnionType):
+            args = [a for a in get_args(tp) if a is not type(None)]
+            if len(args) != 1:
+                return tp
+            tp = args[0]
+        else:
+            return tp
+
+
+def _keys_at(root: type[BaseModel], loc: Loc) -> list[str] | None:
+    """The keys allowed in the table at ``loc`` (walking the models' annotations)."""
+    tp: Any = root
+    for part in loc:
+        tp = _unwrap(tp)
+        if isinstance(tp, type) and issubclass(tp, BaseModel):
+            found = [f for n, f in tp.model_fields.items() if (f.alias or n) == part]
+            if not found:
+                return None
+            tp = found[0].annotation
+        elif get_origin(tp) in (dict, tuple):
+            tp = get_args(tp)[-1 if get_origin(tp) is dict else 0]
+        else:
+            return None
+    tp = _unwrap(tp)
+    if isinstance(tp, type) and issubclass(tp, BaseModel):
+        return [f.alias or n for n, f in tp.model_fields.items()]
+    return None
+
+
+def _unknown_key(root: type[BaseModel], loc: Loc) -> str:
+    if loc == ("broker", "password"):
+        return (
+            "an inline password is refused (it would sit in this file and its backups); "
+            "set broker.password_env to the name of an environment variable holding it, "
+            "or broker.password_file to a file only the daemon can read"
+        )
+    allowed = _keys_at(root, loc[:-1]) or []
+    close = difflib.get_close_matches(str(loc[-1]), allowed, n=1)
+    hint = f"did you mean {close[0]!r}? " if close else ""
+    return f"unknown key; {hint}allowed: {', '.join(allowed)}"
+
+
+def expand_errors(exc: ValidationError, root: type[BaseModel]) -> Iterator[tuple[Loc, str]]:
+    """Each pydantic error as (location, message); rule errors unfold into their problems."""
+    for err in exc.errors(include_url=False):
+        loc: Loc = tuple(err["loc"])
+        kind = err["type"]
+        if kind == _RULE:
+            for rel, msg in err["ctx"]["problems"]:
+                yield (*loc, *rel), msg
+        elif kind == "extra_forbidden":
+            yield loc, _unknown_key(root, loc)
+        elif kind == "missing":
+            yield loc, "required key is missing"
+        else:
+            msg = err["msg"].removeprefix("Value error, ")
+            value = err.get("input")
+            if isinstance(value, bool | int | float) or (
+                isinstance(value, str) and len(value) < 200
+            ):
+                msg += f" (got {json.dumps(value, ensure_ascii=False)})"
+            yield loc, msg
