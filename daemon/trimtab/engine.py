@@ -1,0 +1,450 @@
+"""The engine: readings and references in, corrected values and decisions out.
+
+Pure and deterministic — no sockets, clocks or files. Given the same messages in the same order
+it produces the same outputs and the same state, bit for bit; the MQTT service, ``trimtab
+replay`` and crash recovery (checkpoint + journal) all rely on that.
+
+Per sensor it keeps: the model (created from an initial model-state file, from configured
+centre/scale, or from the first ``scaler_readings`` readings), a time-bounded buffer of recent
+reading inputs for pairing, the guard state, and the event times of the last reading and the
+last reference. Event time is used throughout, never arrival time.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
+
+from trimtab.errors import ModelError, StateError
+from trimtab.guards import Guard, GuardSettings
+from trimtab.messages import Corrected, Reading, Reference
+from trimtab.model import RidgeModel
+from trimtab.pairing import Paired, ReadingBuffer, pair
+from trimtab.terms import Scaler, TermSpec
+
+if TYPE_CHECKING:
+    from trimtab.config import Config, SensorSettings
+
+STATE_VERSION = 1
+DAY = 86400.0
+
+
+@dataclass(frozen=True, slots=True)
+class RefOutcome:
+    """What became of one reference for one sensor it serves."""
+
+    sensor: str
+    status: str
+    residual: float | None = None
+
+
+def spec_of(settings: SensorSettings) -> TermSpec:
+    """The term specification a sensor's settings describe."""
+    return TermSpec(
+        inputs=tuple(settings.inputs),
+        products=tuple((a, b) for a, b in settings.products),
+        squares=tuple(settings.squares),
+        elapsed=settings.elapsed,
+    )
+
+
+def elapsed_scale_days(cfg: Config) -> float:
+    """Scale of the elapsed-time term when the engine fixes it: the memory's span in days."""
+    return max(1.0, cfg.learning.memory * cfg.learning.reference_interval / DAY)
+
+
+def configured_scaler(spec: TermSpec, settings: SensorSettings, cfg: Config) -> Scaler | None:
+    """Centre and scale from the config, when every input has both; derived for other terms.
+
+    Products and squares get the centre and scale their inputs imply for independent inputs
+    (an approximation; it only needs to be reasonable and fixed).
+    """
+    c, s = settings.centre, settings.scale
+    if not c or not s or any(name not in c or name not in s for name in spec.inputs):
+        return None
+    centre = [float(c[n]) for n in spec.inputs]
+    scale = [float(s[n]) for n in spec.inputs]
+    for a, b in spec.products:
+        centre.append(c[a] * c[b])
+        scale.append(math.sqrt((s[a] * s[b]) ** 2 + (c[a] * s[b]) ** 2 + (c[b] * s[a]) ** 2))
+    for a in spec.squares:
+        centre.append(c[a] ** 2 + s[a] ** 2)
+        scale.append(math.sqrt(2.0 * s[a] ** 4 + 4.0 * (c[a] * s[a]) ** 2))
+    if spec.elapsed:
+        centre.append(0.0)
+        scale.append(elapsed_scale_days(cfg))
+    return Scaler(tuple(centre), tuple(scale))
+
+
+class SensorState:
+    """Everything the engine keeps for one sensor."""
+
+    __slots__ = (
+        "buffer", "guard", "last_applied_t", "last_ref_t", "last_reading_t", "model", "n_preq", "scaler_rows",
+        "settings", "spec", "sq_preq", "warm",
+    )
+
+    def __init__(self, settings: SensorSettings, spec: TermSpec, buffer: ReadingBuffer,
+                 guard: Guard) -> None:
+        self.settings = settings
+        self.spec = spec
+        self.model: RidgeModel | None = None
+        self.scaler_rows: list[list[float]] = []
+        self.buffer = buffer
+        self.guard = guard
+        self.last_reading_t: float | None = None
+        self.last_ref_t: float | None = None
+        self.last_applied_t: float | None = None
+        self.sq_preq = 0.0
+        self.n_preq = 0
+        self.warm = False
+
+    def rmse(self) -> float | None:
+        """Prequential RMSE over every paired reference (applied or gated)."""
+        return math.sqrt(self.sq_preq / self.n_preq) if self.n_preq else None
+
+
+class Engine:
+    """One model per sensor, updated from references and applied to every reading."""
+
+    def __init__(self, cfg: Config, initial_models: Mapping[str, RidgeModel] | None = None) -> None:
+        self._initial = dict(initial_models or {})
+        self._sensors: dict[str, SensorState] = {}
+        self.counts: Counter[str] = Counter()
+        self._cfg = cfg
+        self._gs = self._guard_settings(cfg)
+
+    # -- configuration -------------------------------------------------------------------------
+
+    @staticmethod
+    def _guard_settings(cfg: Config) -> GuardSettings:
+        lc = cfg.learning
+        return GuardSettings(
+            gate_k=lc.gate_k, gate_run=lc.gate_run, warmup=lc.warmup,
+            snapshot_every=lc.snapshot_every, rollback_factor=lc.rollback_factor,
+            alpha=lc.alpha, alpha_min=lc.alpha_min,
+        )
+
+    @property
+    def config(self) -> Config:
+        """The config in force."""
+        return self._cfg
+
+    def reconfigure(self, cfg: Config) -> None:
+        """Apply a reloaded config's live settings (learning, output) to every sensor.
+
+        α restarts from the new configured value; the models keep what they learned.
+        """
+        self._cfg = cfg
+        self._gs = self._guard_settings(cfg)
+        for st in self._sensors.values():
+            if st.model is not None:
+                st.model = self._with_learning(st.model)
+            st.guard.alpha = min(max(cfg.learning.alpha, cfg.learning.alpha_min),
+                                 cfg.learning.alpha_max)
+
+    def _with_learning(self, model: RidgeModel) -> RidgeModel:
+        lc = self._cfg.learning
+        return model.with_settings(
+            lam=lc.lam, memory=lc.memory, huber_delta=lc.huber_delta,
+            normalised=lc.normalised, clip=lc.feature_clip,
+        )
+
+    # -- per-sensor state ----------------------------------------------------------------------
+
+    def sensors(self) -> list[str]:
+        """The sensors the engine has state for, sorted."""
+        return sorted(self._sensors)
+
+    def model(self, sensor: str) -> RidgeModel | None:
+        """The current model of a sensor, if it has one yet."""
+        st = self._sensors.get(sensor)
+        return None if st is None else st.model
+
+    def _state(self, sensor: str) -> SensorState:
+        st = self._sensors.get(sensor)
+        if st is None:
+            settings = self._cfg.sensor_settings(sensor)
+            spec = spec_of(settings)
+            pc = self._cfg.pairing
+            st = SensorState(
+                settings, spec,
+                ReadingBuffer(spec.inputs, pc.buffer_span, pc.buffer_capacity),
+                Guard(alpha=self._cfg.learning.alpha),
+            )
+            if settings.initial_state is not None:
+                st.model = self._with_learning(self._initial[str(settings.initial_state)].copy())
+                st.warm = True
+            self._sensors[sensor] = st
+        return st
+
+    def _new_model(self, st: SensorState, scaler: Scaler, origin: float) -> RidgeModel:
+        lc = self._cfg.learning
+        prior = None if isinstance(st.settings.prior, str) else list(st.settings.prior)
+        return RidgeModel(
+            st.spec, scaler, origin=origin, lam=lc.lam, memory=lc.memory, prior=prior,
+            penalise_intercept=st.settings.penalise_intercept, huber_delta=lc.huber_delta,
+            normalised=lc.normalised, clip=lc.feature_clip,
+        )
+
+    def _ensure_model(self, st: SensorState, reading: Reading) -> None:
+        """Create the model when the scaler can be fixed (at once, or after N readings)."""
+        if st.model is not None:
+            return
+        scaler = configured_scaler(st.spec, st.settings, self._cfg)
+        if scaler is not None:
+            st.model = self._new_model(st, scaler, reading.t)
+            return
+        origin = st.scaler_rows[0][0] if st.scaler_rows else reading.t
+        st.scaler_rows.append([reading.t, *st.spec.row(reading.inputs, reading.t, origin)])
+        if len(st.scaler_rows) >= st.settings.scaler_readings:
+            import numpy as np
+
+            terms = np.array([row[1:] for row in st.scaler_rows], dtype=float)
+            scaler = Scaler.from_terms(terms)
+            if st.spec.elapsed:
+                centre = (*scaler.centre[:-1], 0.0)
+                scale = (*scaler.scale[:-1], elapsed_scale_days(self._cfg))
+                scaler = Scaler(centre, scale)
+            st.model = self._new_model(st, scaler, origin)
+            st.scaler_rows = []
+
+    # -- messages ------------------------------------------------------------------------------
+
+    def process(self, event: Reading | Reference) -> list[Corrected]:
+        """Handle one decoded event; a reading yields its corrected value (or nothing)."""
+        if isinstance(event, Reading):
+            out = self.on_reading(event)
+            return [] if out is None else [out]
+        self.on_reference(event)
+        return []
+
+    def on_reading(self, r: Reading) -> Corrected | None:
+        """Correct one reading and buffer its inputs for pairing."""
+        if not self._cfg.sensor_allowed(r.sensor):
+            self.counts["reading_unknown_sensor"] += 1
+            return None
+        st = self._state(r.sensor)
+        missing = [n for n in st.spec.inputs if n not in r.inputs]
+        if missing:
+            self.counts["reading_missing_input"] += 1
+            return None
+        raw = float(r.inputs[st.spec.inputs[0]])
+        fresh = st.last_reading_t is None or r.t > st.last_reading_t
+        if not fresh and r.t == st.last_reading_t:
+            self.counts["reading_duplicate"] += 1
+            return None
+        if fresh:
+            st.last_reading_t = r.t
+            st.buffer.add(r.t, [float(r.inputs[n]) for n in st.spec.inputs])
+            self._ensure_model(st, r)
+            self.counts["reading_accepted"] += 1
+        else:
+            self.counts["reading_out_of_order"] += 1
+        return self._correct(st, r, raw)
+
+    def _correct(self, st: SensorState, r: Reading, raw: float) -> Corrected:
+        oc = self._cfg.output
+        model = st.model
+        if model is None:
+            return Corrected(r.t, r.sensor, raw, raw, 0.0, ("warmup",), 0)
+        flags: list[str] = []
+        phi, zmax = model.phi(r.inputs, r.t)
+        if st.warm or st.guard.applied >= self._cfg.learning.warmup:
+            value = model.predict_phi(phi)
+        else:
+            flags.append("warmup")
+            value = sum(p * f for p, f in zip(model.prior, phi, strict=True))
+        if zmax > oc.extrapolation:
+            flags.append("extrapolating")
+        since = st.last_applied_t if st.last_applied_t is not None else model.origin
+        if r.t - since > oc.stale_after:
+            flags.append("stale")
+        if st.guard.held or not math.isfinite(value):
+            flags.append("held")
+        if not math.isfinite(value):
+            self.counts["prediction_non_finite"] += 1
+            value = raw
+        if oc.cap is not None and abs(value - raw) > oc.cap:
+            value = raw + math.copysign(oc.cap, value - raw)
+            flags.append("capped")
+        return Corrected(r.t, r.sensor, value, raw, model.band(oc.band_k), tuple(flags),
+                         model.updates)
+
+    def on_reference(self, ref: Reference) -> list[RefOutcome]:
+        """Pair a reference with each sensor it serves, gate it, and apply it."""
+        out: list[RefOutcome] = []
+        for sensor in self._cfg.reference_targets(ref.sensor):
+            status, residual = self._reference_for(sensor, ref)
+            self.counts[f"reference_{status}"] += 1
+            out.append(RefOutcome(sensor, status, residual))
+        return out
+
+    def _reference_for(self, sensor: str, ref: Reference) -> tuple[str, float | None]:
+        if not self._cfg.sensor_allowed(sensor):
+            return "unknown_sensor", None
+        st = self._state(sensor)
+        # References must advance in time per sensor, whatever becomes of them: a redelivered
+        # one is recognised and skipped, so each is applied at most once.
+        if st.last_ref_t is not None and ref.t <= st.last_ref_t:
+            return ("duplicate" if ref.t == st.last_ref_t else "out_of_order"), None
+        st.last_ref_t = ref.t
+        if st.model is None:
+            return "model_not_ready", None
+        pc = self._cfg.pairing
+        paired = pair(st.buffer, ref, default_window=pc.window, anchor=pc.anchor,
+                      tolerance=pc.tolerance)
+        if not isinstance(paired, Paired):
+            return paired.reason, None
+        model = st.model
+        inputs = dict(zip(st.spec.inputs, paired.values, strict=True))
+        phi, _ = model.phi(inputs, paired.t)
+        residual = model.predict_phi(phi) - ref.value
+        if not math.isfinite(residual):
+            return "non_finite", None
+        st.sq_preq += residual * residual
+        st.n_preq += 1
+        verdict = st.guard.judge(residual, model.spread, self._gs)
+        if verdict == "suspect":
+            st.guard.hold(phi, ref.value)
+            return "gated", residual
+        if verdict == "shift":
+            for held_phi, held_y in st.guard.take_suspects():
+                self._apply(st, held_phi, held_y)
+        status = self._apply(st, phi, ref.value)
+        if status == "applied":
+            st.last_applied_t = ref.t
+            if verdict == "shift" and st.model is not None:
+                st.guard.restart_baseline(st.model.to_dict())
+                status = "level_shift"
+        return status, residual
+
+    def _apply(self, st: SensorState, phi: list[float], y: float) -> str:
+        """One guarded shrink-then-step update; returns the reference's status."""
+        model = st.model
+        assert model is not None
+        before = model.to_dict() if st.guard.snapshot is None else None
+        if before is not None:
+            st.guard.take_snapshot(before)
+        saved = model.copy()
+        try:
+            r = model.step_phi(phi, y, st.guard.alpha)
+        except ModelError:
+            return "non_finite"
+        if not all(math.isfinite(v) for v in model.theta):
+            st.model = saved
+            self._restore(st)
+            return "rolled_back"
+        st.guard.record(r, self._gs)
+        st.guard.held = False
+        if st.guard.exploded(self._gs):
+            self._restore(st)
+            return "rolled_back"
+        if st.guard.due_snapshot(self._gs):
+            st.guard.take_snapshot(model.to_dict())
+        return "applied"
+
+    def _restore(self, st: SensorState) -> None:
+        snap = st.guard.roll_back(self._gs)
+        if snap is not None:
+            st.model = RidgeModel.from_dict(snap)
+
+    # -- state ---------------------------------------------------------------------------------
+
+    @staticmethod
+    def _sensor_dict(st: SensorState) -> dict[str, Any]:
+        return {
+            "model": None if st.model is None else st.model.to_dict(),
+            "scaler_rows": st.scaler_rows,
+            "buffer": st.buffer.to_dict(),
+            "guard": st.guard.to_dict(),
+            "last_reading_t": st.last_reading_t,
+            "last_ref_t": st.last_ref_t,
+            "last_applied_t": st.last_applied_t,
+            "sq_preq": st.sq_preq,
+            "n_preq": st.n_preq,
+            "warm": st.warm,
+        }
+
+    def _load_sensor(self, name: str, d: Mapping[str, Any]) -> None:
+        st = self._state(name)
+        st.model = None if d["model"] is None else RidgeModel.from_dict(d["model"])
+        if st.model is not None and st.model.spec != st.spec:
+            raise StateError(f"sensor {name}: stored model has terms {list(st.model.spec.names())}"
+                             f" but the config gives {list(st.spec.names())}")
+        st.scaler_rows = [[float(v) for v in row] for row in d["scaler_rows"]]
+        st.buffer = ReadingBuffer.from_dict(d["buffer"])
+        st.guard = Guard.from_dict(d["guard"])
+        st.last_reading_t = d["last_reading_t"]
+        st.last_ref_t = d["last_ref_t"]
+        st.last_applied_t = d["last_applied_t"]
+        st.sq_preq = float(d["sq_preq"])
+        st.n_preq = int(d["n_preq"])
+        st.warm = bool(d["warm"])
+
+    def state_dict(self) -> dict[str, Any]:
+        """The whole state as plain JSON-able data; floats round-trip exactly."""
+        sensors = {name: self._sensor_dict(st) for name, st in self._sensors.items()}
+        return {"version": STATE_VERSION, "sensors": sensors, "counts": dict(self.counts)}
+
+    def load_state(self, state: Mapping[str, Any]) -> None:
+        """Replace the engine's state with one from :meth:`state_dict`."""
+        if state.get("version") != STATE_VERSION:
+            raise StateError(f"engine state version {state.get('version')!r} is not "
+                             f"{STATE_VERSION}")
+        try:
+            self._sensors = {}
+            for name, d in state["sensors"].items():
+                self._load_sensor(name, d)
+            self.counts = Counter({str(k): int(v) for k, v in state["counts"].items()})
+        except (KeyError, TypeError, ValueError, AttributeError) as exc:
+            raise StateError(f"engine state is malformed: {exc!r}") from exc
+
+    def export_sensor(self, sensor: str) -> dict[str, Any]:
+        """One sensor's whole state, to move it to another daemon."""
+        st = self._sensors.get(sensor)
+        if st is None:
+            raise StateError(f"no state for sensor {sensor!r}")
+        return {"format": "trimtab-sensor-state", "version": STATE_VERSION, "sensor": sensor,
+                "state": self._sensor_dict(st)}
+
+    def import_sensor(self, exported: Mapping[str, Any]) -> str:
+        """Take over a sensor exported by :meth:`export_sensor`; returns its id."""
+        try:
+            if exported.get("format") != "trimtab-sensor-state":
+                raise StateError("not a trimtab sensor-state export (format key)")
+            if exported.get("version") != STATE_VERSION:
+                raise StateError(f"sensor-state version {exported.get('version')!r} is not "
+                                 f"{STATE_VERSION}")
+            sensor = str(exported["sensor"])
+            if not self._cfg.sensor_allowed(sensor):
+                raise StateError(f"sensor {sensor!r} is not configured on this daemon")
+            self._sensors.pop(sensor, None)
+            self._load_sensor(sensor, exported["state"])
+        except (KeyError, TypeError, ValueError, AttributeError) as exc:
+            raise StateError(f"sensor-state export is malformed: {exc!r}") from exc
+        return sensor
+
+    def drop_sensor(self, sensor: str) -> None:
+        """Forget a sensor (after it has been exported to another daemon)."""
+        self._sensors.pop(sensor, None)
+
+    def stats(self) -> dict[str, Any]:
+        """Per-sensor figures for the status message and metrics."""
+        per: dict[str, Any] = {}
+        for name, st in sorted(self._sensors.items()):
+            rmse = st.rmse()
+            per[name] = {
+                "updates": 0 if st.model is None else st.model.updates,
+                "rmse": rmse,
+                "alpha": st.guard.alpha,
+                "rollbacks": st.guard.rollbacks,
+                "held": st.guard.held,
+                "ready": st.model is not None,
+                "last_reference_t": st.last_applied_t,
+                "last_reading_t": st.last_reading_t,
+            }
+        return {"sensors": per, "counts": dict(sorted(self.counts.items()))}

@@ -1,0 +1,156 @@
+"""Run-time guards of one sensor's model: suspect gate, good snapshots, rollback, step size.
+
+The config's bounds make divergence impossible in theory; these guards catch what gets past
+them in practice (a broken reference instrument, a sensor swapped without notice):
+
+* **gate** — a reference whose prequential residual exceeds ``gate_k`` robust spreads is held
+  as a *suspect* and not applied. ``gate_run`` suspects in a row on the same side are a real
+  level shift: they are all applied, in order, and the error baseline restarts.
+* **snapshot / rollback** — every ``snapshot_every`` applied references the model is copied as
+  the last good one, with the recent mean squared error at that time. When the recent error
+  (an exponentially weighted mean of squared prequential residuals) exceeds
+  ``rollback_factor²`` times the snapshot's, the model returns to the snapshot and α halves,
+  never below ``alpha_min``. A non-finite state after an update is rolled back the same way.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Literal
+
+Verdict = Literal["apply", "suspect", "shift"]
+
+
+@dataclass(frozen=True, slots=True)
+class GuardSettings:
+    """The guard's knobs, taken from the ``[learning]`` section of the config."""
+
+    gate_k: float
+    gate_run: int
+    warmup: int
+    snapshot_every: int
+    rollback_factor: float
+    alpha: float
+    alpha_min: float
+
+
+@dataclass(slots=True)
+class Guard:
+    """Mutable guard state of one sensor; plain data so it checkpoints as a dict."""
+
+    alpha: float
+    applied: int = 0
+    run_sign: int = 0
+    suspects: list[tuple[list[float], float]] = field(default_factory=list)
+    recent_ms: float = 0.0
+    snapshot: dict[str, Any] | None = None
+    snapshot_ms: float = 0.0
+    since_snapshot: int = 0
+    held: bool = False
+    rollbacks: int = 0
+    fresh: bool = True
+
+    def judge(self, residual: float, spread: float, s: GuardSettings) -> Verdict:
+        """Decide what to do with a paired reference whose prequential residual is given."""
+        gate_active = self.applied >= s.warmup and spread > 0.0
+        if not gate_active or abs(residual) <= s.gate_k * spread:
+            self.run_sign = 0
+            self.suspects.clear()
+            return "apply"
+        sign = 1 if residual > 0 else -1
+        if sign != self.run_sign:
+            self.run_sign = sign
+            self.suspects.clear()
+        if len(self.suspects) + 1 >= s.gate_run:
+            return "shift"
+        return "suspect"
+
+    def hold(self, phi: list[float], y: float) -> None:
+        """Keep a suspect reference until the run decides (bounded by ``gate_run``)."""
+        self.suspects.append((phi, y))
+
+    def take_suspects(self) -> list[tuple[list[float], float]]:
+        """Hand over the held suspects (oldest first) and end the run."""
+        held, self.suspects = self.suspects, []
+        self.run_sign = 0
+        return held
+
+    def record(self, residual: float, s: GuardSettings) -> None:
+        """Fold one applied reference's prequential residual into the recent error."""
+        w = 2.0 / (s.snapshot_every + 1.0)
+        sq = residual * residual
+        self.recent_ms = sq if self.fresh else (1.0 - w) * self.recent_ms + w * sq
+        self.fresh = False
+        self.applied += 1
+        self.since_snapshot += 1
+
+    def exploded(self, s: GuardSettings) -> bool:
+        """Whether the recent error has grown past the rollback threshold since the snapshot."""
+        if self.snapshot is None or self.snapshot_ms <= 0.0:
+            return False
+        return self.recent_ms > (s.rollback_factor**2) * self.snapshot_ms
+
+    def due_snapshot(self, s: GuardSettings) -> bool:
+        """Whether enough references were applied since the last good snapshot."""
+        return self.since_snapshot >= s.snapshot_every
+
+    def take_snapshot(self, model_state: dict[str, Any]) -> None:
+        """Remember the model as the last good one, with the error it had."""
+        self.snapshot = model_state
+        self.snapshot_ms = self.recent_ms
+        self.since_snapshot = 0
+
+    def roll_back(self, s: GuardSettings) -> dict[str, Any] | None:
+        """Halve α (not below α_min), mark outputs held, and return the snapshot to restore."""
+        self.alpha = max(self.alpha * 0.5, s.alpha_min)
+        self.held = True
+        self.rollbacks += 1
+        self.recent_ms = self.snapshot_ms
+        self.since_snapshot = 0
+        self.suspects.clear()
+        self.run_sign = 0
+        return self.snapshot
+
+    def restart_baseline(self, model_state: dict[str, Any]) -> None:
+        """After an accepted level shift: snapshot now, and measure the new regime afresh.
+
+        The snapshot's error is unknown until the next due snapshot, so no rollback can fire
+        on the shift's own large residuals.
+        """
+        self.snapshot = model_state
+        self.snapshot_ms = 0.0
+        self.since_snapshot = 0
+        self.fresh = True
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-able state (floats round-trip exactly through json)."""
+        return {
+            "alpha": self.alpha,
+            "applied": self.applied,
+            "run_sign": self.run_sign,
+            "suspects": [[list(phi), y] for phi, y in self.suspects],
+            "recent_ms": self.recent_ms,
+            "snapshot": self.snapshot,
+            "snapshot_ms": self.snapshot_ms,
+            "since_snapshot": self.since_snapshot,
+            "held": self.held,
+            "rollbacks": self.rollbacks,
+            "fresh": self.fresh,
+        }
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> Guard:
+        """Rebuild from :meth:`to_dict`'s output."""
+        return cls(
+            alpha=float(d["alpha"]),
+            applied=int(d["applied"]),
+            run_sign=int(d["run_sign"]),
+            suspects=[([float(v) for v in phi], float(y)) for phi, y in d["suspects"]],
+            recent_ms=float(d["recent_ms"]),
+            snapshot=d["snapshot"],
+            snapshot_ms=float(d["snapshot_ms"]),
+            since_snapshot=int(d["since_snapshot"]),
+            held=bool(d["held"]),
+            rollbacks=int(d["rollbacks"]),
+            fresh=bool(d["fresh"]),
+        )
