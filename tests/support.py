@@ -185,13 +185,13 @@ class Watcher:
         self.stats: dict[str, Any] | None = None
         self.events: list[str] = []
         self._cond = threading.Condition()
+        self._topic = status_topic
         self._client = mqtt.Client(CallbackAPIVersion.VERSION2,
                                    client_id=f"watch-{os.getpid()}-{time.monotonic_ns()}")
         self._client.on_message = self._on_message
         self._client.connect("127.0.0.1", port)
         self._client.subscribe([(status_topic, 1), (status_topic + "/stats", 1)])
         self._client.loop_start()
-        self._topic = status_topic
 
     def _on_message(self, c: mqtt.Client, u: Any, msg: mqtt.MQTTMessage) -> None:
         with self._cond:

@@ -9,6 +9,7 @@ import tomllib
 from pathlib import Path
 
 import pytest
+
 from trimtab.cli import main
 from trimtab.config import load_config, parse_config
 

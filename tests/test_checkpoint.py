@@ -12,6 +12,7 @@ import sys
 from pathlib import Path
 
 import pytest
+
 from trimtab.checkpoint import CheckpointStore, checkpoint_name
 from trimtab.errors import StateError
 

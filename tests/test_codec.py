@@ -9,6 +9,7 @@ import struct
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
+
 from trimtab.codec import (
     MAX_ABS,
     REASONS,

@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+
 from trimtab.config import RELOADABLE, Config, load_config, parse_config, restart_required
 from trimtab.errors import ConfigError, ModelError
 from trimtab.model import RidgeModel

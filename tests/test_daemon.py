@@ -93,7 +93,7 @@ class TestEndToEnd:
 class TestCrashAndBrokerLoss:
     def test_kill9_at_random_points_gives_the_uninterrupted_state(
             self, tmp_path: Path, broker: PrivateBroker) -> None:
-        """kill -9 at 5 random points of a QoS 1 stream: the final state equals an uninterrupted run."""
+        """kill -9 at 5 random points of a QoS 1 stream: final state equals an uninterrupted run."""
         cfg_path, daemon, watcher = _setup(tmp_path, broker)
         cfg = load_config(cfg_path)
         events = synthetic_stream(900)
@@ -122,7 +122,7 @@ class TestCrashAndBrokerLoss:
         assert applied == {s: engine.model(s).updates for s in ("s1", "s2")}  # type: ignore[union-attr]
 
     def test_broker_restart_mid_stream(self, tmp_path: Path, broker: PrivateBroker) -> None:
-        """The broker stopped and started mid-stream: the daemon reconnects and ends in the same state."""
+        """Broker restarted mid-stream: the daemon reconnects and ends in the same state."""
         cfg_path, daemon, watcher = _setup(tmp_path, broker)
         cfg = load_config(cfg_path)
         events = synthetic_stream(300)

@@ -18,6 +18,7 @@ from typing import Any
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+
 from trimtab.errors import StateError
 from trimtab.journal import Journal, encode_record, read_journal
 

@@ -11,6 +11,7 @@ from datetime import datetime, timedelta
 from typing import Any
 
 import pytest
+
 from trimtab.errors import ConfigError
 from trimtab.logs import MASK, configure_logging, get_logger, reset_logging
 

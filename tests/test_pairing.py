@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
+
 from trimtab.errors import StateError
 from trimtab.messages import Reference
 from trimtab.pairing import Paired, ReadingBuffer, Unmatched, pair

@@ -13,6 +13,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+
 from trimtab.errors import StateError
 from trimtab.statestore import Recovery, StateStore
 

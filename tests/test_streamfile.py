@@ -9,6 +9,7 @@ from pathlib import Path
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
+
 from trimtab.codec import MAX_ABS
 from trimtab.errors import DataError, DecodeError
 from trimtab.messages import Corrected, Reading, Reference

@@ -7,6 +7,7 @@ import re
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
+
 from trimtab.errors import DecodeError
 from trimtab.topics import SENSOR_ID_PATTERN, TopicTemplate, validate_sensor_id
 

@@ -83,8 +83,18 @@ class SensorState:
     """Everything the engine keeps for one sensor."""
 
     __slots__ = (
-        "buffer", "guard", "last_applied_t", "last_ref_t", "last_reading_t", "model", "n_preq", "scaler_rows",
-        "settings", "spec", "sq_preq", "warm",
+        "buffer",
+        "guard",
+        "last_applied_t",
+        "last_reading_t",
+        "last_ref_t",
+        "model",
+        "n_preq",
+        "scaler_rows",
+        "settings",
+        "spec",
+        "sq_preq",
+        "warm",
     )
 
     def __init__(self, settings: SensorSettings, spec: TermSpec, buffer: ReadingBuffer,

@@ -14,7 +14,7 @@ from trimtab.messages import Reading, Reference
 
 
 def event_to_record(event: Reading | Reference) -> dict[str, Any]:
-    """The stream-file object of an event (``truth`` is not journaled: the engine never reads it)."""
+    """The stream-file object of an event (``truth`` is left out: the engine never reads it)."""
     if isinstance(event, Reading):
         return {"t": event.t, "sensor": event.sensor, "reading": dict(event.inputs)}
     rec: dict[str, Any] = {"t": event.t, "sensor": event.sensor, "reference": event.value}

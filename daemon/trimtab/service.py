@@ -238,7 +238,7 @@ class Service:
 
     def serve(self, *, install_signals: bool = True) -> None:
         """Run until SIGTERM/SIGINT or :meth:`request_stop`; checkpoint and go offline."""
-        previous: dict[int, Any] = {}
+        previous: dict[signal.Signals, Any] = {}
         if install_signals:
             for sig in (signal.SIGHUP, signal.SIGTERM, signal.SIGINT):
                 previous[sig] = signal.signal(sig, self._signal)

@@ -154,7 +154,7 @@ class Transport:
     def _connect_properties(self) -> Properties | None:
         if self.endpoint.protocol != "5":
             return None
-        props = Properties(PacketTypes.CONNECT)
+        props = Properties(PacketTypes.CONNECT)  # type: ignore[no-untyped-call]
         props.SessionExpiryInterval = self.endpoint.session_expiry
         return props
 
@@ -175,9 +175,11 @@ class Transport:
             log.info("mqtt_connected", host=self.endpoint.host, port=self.endpoint.port,
                      session_present=session)
             if self.subscriptions:
-                opts = [(t, SubscribeOptions(qos=q)) for t, q in self.subscriptions]
-                rc, mid = client.subscribe(opts) if self.endpoint.protocol == "5" else \
-                    client.subscribe(list(self.subscriptions))
+                if self.endpoint.protocol == "5":
+                    opts = [(t, SubscribeOptions(qos=q)) for t, q in self.subscriptions]
+                    _, mid = client.subscribe(opts)
+                else:
+                    _, mid = client.subscribe(list(self.subscriptions))
                 if mid is not None:
                     self._sub_mids.add(mid)
             else:
@@ -218,7 +220,7 @@ class Transport:
 
     def _on_message(self, client: mqtt.Client, userdata: Any, msg: mqtt.MQTTMessage) -> None:
         try:
-            self._handler(msg.topic, msg.payload, msg.mid, msg.qos)
+            self._handler(msg.topic, bytes(msg.payload), msg.mid, msg.qos)
         except Exception:
             self.callback_errors += 1
             log.exception("mqtt_callback_failed", callback="on_message", topic=msg.topic)
