@@ -40,14 +40,14 @@ class TestCheckProcess:
         """A config with two problems exits 2 and prints exactly those two lines."""
         path = tmp_path / "bad.toml"
         path.write_text('[broker]\nclient_id = "gw"\nport = 0\n[sensors]\nids = ["a"]\n'
-                        "[learning]\nalpha = 1.0\n", encoding="utf-8")
+                        "[learning]\nalpha = 1.5\n", encoding="utf-8")
         done = trimtab("check", str(path), cwd=tmp_path)
         assert done.returncode == 2
         assert done.stderr.splitlines() == [
             f"trimtab check: {path}: broker.port: Input should be greater than or equal to 1 "
             "(got 0)",
-            f"trimtab check: {path}: learning.alpha: 1 is outside [alpha_min, alpha_max] = "
-            "[0.001, 0.2] (rule: alpha_min ≤ alpha ≤ alpha_max)",
+            f"trimtab check: {path}: learning.alpha: 1.5 is outside [alpha_min, alpha_max] = "
+            "[0.01, 1] (rule: alpha_min ≤ alpha ≤ alpha_max)",
         ]
         assert done.stdout == ""
 
@@ -73,11 +73,11 @@ class TestCheckOutput:
         """check prints the shrink factor, each settings group's margin, memory and reloads."""
         assert main(["check", "--no-files", str(ROOT / "config" / "gateway.toml")]) == 0
         out = capsys.readouterr().out
-        assert "#   at alpha_max, lambda_max: 0.994048" in out
+        assert "#   at alpha_max, lambda_max: 0.970238" in out
         assert "# memory: 336 references = 1.2096e+06 s ≈ 14 days" in out
         groups = "#   sensors.overrides.no2-02: k = 4 terms (raw, temp, raw*temp, elapsed_days)"
         assert groups in out
-        assert out.count("< 2; margin 10.1") == 3
+        assert out.count("< 2; margin 2.01") == 3
         assert "# live on SIGHUP: learning.alpha," in out
 
     def test_password_never_printed(self, capsys: pytest.CaptureFixture[str], tmp_path: Path,

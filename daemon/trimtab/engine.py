@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import math
 from collections import Counter
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
@@ -30,6 +30,8 @@ if TYPE_CHECKING:
 
 STATE_VERSION = 1
 DAY = 86400.0
+PENDING_LIMIT = 256
+"""Paired references kept while a sensor's scaler is still being fixed from its readings."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -90,6 +92,7 @@ class SensorState:
         "last_ref_t",
         "model",
         "n_preq",
+        "pending",
         "scaler_rows",
         "settings",
         "spec",
@@ -103,6 +106,7 @@ class SensorState:
         self.spec = spec
         self.model: RidgeModel | None = None
         self.scaler_rows: list[list[float]] = []
+        self.pending: list[tuple[list[float], float, float, float]] = []
         self.buffer = buffer
         self.guard = guard
         self.last_reading_t: float | None = None
@@ -221,6 +225,10 @@ class Engine:
                 scaler = Scaler(centre, scale)
             st.model = self._new_model(st, scaler, origin)
             st.scaler_rows = []
+            pending, st.pending = st.pending, []
+            for values, t_pair, y, ref_t in pending:
+                status, _ = self._learn(st, values, t_pair, y, ref_t)
+                self.counts[f"reference_{status}"] += 1
 
     # -- messages ------------------------------------------------------------------------------
 
@@ -302,31 +310,43 @@ class Engine:
         if st.last_ref_t is not None and ref.t <= st.last_ref_t:
             return ("duplicate" if ref.t == st.last_ref_t else "out_of_order"), None
         st.last_ref_t = ref.t
-        if st.model is None:
-            return "model_not_ready", None
         pc = self._cfg.pairing
         paired = pair(st.buffer, ref, default_window=pc.window, anchor=pc.anchor,
                       tolerance=pc.tolerance)
         if not isinstance(paired, Paired):
             return paired.reason, None
+        if st.model is None:
+            # The scaler is still being fixed from the first readings: keep the paired
+            # reference (bounded) and learn from it as soon as the model exists.
+            if len(st.pending) >= PENDING_LIMIT:
+                st.pending.pop(0)
+                self.counts["reference_pending_overflow"] += 1
+            st.pending.append((list(paired.values), paired.t, ref.value, ref.t))
+            return "pending", None
+        return self._learn(st, paired.values, paired.t, ref.value, ref.t)
+
+    def _learn(self, st: SensorState, values: Sequence[float], t_pair: float, y: float,
+               ref_t: float) -> tuple[str, float | None]:
+        """Gate one paired reference and apply it (or hold it as a suspect)."""
         model = st.model
-        inputs = dict(zip(st.spec.inputs, paired.values, strict=True))
-        phi, _ = model.phi(inputs, paired.t)
-        residual = model.predict_phi(phi) - ref.value
+        assert model is not None
+        inputs = dict(zip(st.spec.inputs, values, strict=True))
+        phi, _ = model.phi(inputs, t_pair)
+        residual = model.predict_phi(phi) - y
         if not math.isfinite(residual):
             return "non_finite", None
         st.sq_preq += residual * residual
         st.n_preq += 1
         verdict = st.guard.judge(residual, model.spread, self._gs)
         if verdict == "suspect":
-            st.guard.hold(phi, ref.value)
+            st.guard.hold(phi, y)
             return "gated", residual
         if verdict == "shift":
             for held_phi, held_y in st.guard.take_suspects():
                 self._apply(st, held_phi, held_y)
-        status = self._apply(st, phi, ref.value)
+        status = self._apply(st, phi, y)
         if status == "applied":
-            st.last_applied_t = ref.t
+            st.last_applied_t = ref_t
             if verdict == "shift" and st.model is not None:
                 st.guard.restart_baseline(st.model.to_dict())
                 status = "level_shift"
@@ -369,6 +389,7 @@ class Engine:
         return {
             "model": None if st.model is None else st.model.to_dict(),
             "scaler_rows": st.scaler_rows,
+            "pending": [[v, tp, y, rt] for v, tp, y, rt in st.pending],
             "buffer": st.buffer.to_dict(),
             "guard": st.guard.to_dict(),
             "last_reading_t": st.last_reading_t,
@@ -386,6 +407,8 @@ class Engine:
             raise StateError(f"sensor {name}: stored model has terms {list(st.model.spec.names())}"
                              f" but the config gives {list(st.spec.names())}")
         st.scaler_rows = [[float(v) for v in row] for row in d["scaler_rows"]]
+        st.pending = [([float(x) for x in v], float(tp), float(y), float(rt))
+                      for v, tp, y, rt in d["pending"]]
         st.buffer = ReadingBuffer.from_dict(d["buffer"])
         st.guard = Guard.from_dict(d["guard"])
         st.last_reading_t = d["last_reading_t"]
