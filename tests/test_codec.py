@@ -164,6 +164,13 @@ class TestJsonCodec:
             T0, "no2-07", {"raw": 41.2, "temp": 21.4, "rh": 55.0}
         )  # fmt: skip
 
+    def test_absent_covariate_is_left_to_the_engine(self) -> None:
+        """A reading without a configured covariate decodes without it (sensors differ)."""
+        r = self.codec.decode_reading("co2-1", b'{"t": 1767225600, "raw": 612, "temperature": 19}')
+        assert dict(r.inputs) == {"raw": 612.0, "temp": 19.0}
+        assert JsonCodec(covariates={"temp": "temperature"}).decode_reading(
+            "co2-1", self.codec.encode_reading(r)) == r
+
     def test_custom_field_names(self) -> None:
         """Configured field names are read instead of the defaults."""
         codec = JsonCodec(time_field="ts", value_field="ppb", reference_field="ref",
@@ -196,7 +203,7 @@ class TestJsonCodec:
         ("payload", "reason", "detail"),
         [
             (b"[1]", "not_object", "payload must be a JSON object, got array"),
-            (b'{"t": 1767225600, "raw": 1}', "missing_field", "'temperature' is missing"),
+            (b'{"t": 1767225600, "temperature": 1}', "missing_field", "'raw' is missing"),
             (b'{"raw": 1, "temperature": 2, "humidity": 3}', "missing_field", "'t' is missing"),
             (b'{"t": 1767225600, "raw": "1", "temperature": 2, "humidity": 3}', "wrong_type",
              "field 'raw' must be a number, got string"),
@@ -387,6 +394,12 @@ class TestSenmlCodec:
         with pytest.raises(DecodeError, match=r"duplicate_name: records \[1, 2, 3, 4, 5, 6\]"):
             codec.decode_reading("dev", RFC_5_1_2_TIMED)
 
+    def test_absent_covariate_is_left_to_the_engine(self) -> None:
+        """A pack without the covariate's record decodes to the raw value alone."""
+        r = self.codec.decode_reading("co2-1", pack({"bt": T0, "n": "raw", "v": 612}))
+        assert dict(r.inputs) == {"raw": 612.0}
+        assert self.codec.decode_reading("co2-1", self.codec.encode_reading(r)) == r
+
     def test_reading_with_base_name_and_covariate(self) -> None:
         """Records are matched on the part after the base name; covariates by their names."""
         r = self.codec.decode_reading("no2-07", pack(
@@ -416,7 +429,7 @@ class TestSenmlCodec:
     @pytest.mark.parametrize(
         ("payload", "reason", "detail"),
         [
-            (pack({"bt": T0, "n": "raw", "v": 1}), "missing_field", "'temperature'"),
+            (pack({"bt": T0, "n": "temperature", "v": 1}), "missing_field", "'raw'"),
             (pack({"bt": T0, "n": "raw", "v": 1}, {"n": "temperature", "t": 1, "v": 2}),
              "time_mismatch", "different times"),
             (pack({"bt": T0, "n": "raw", "vs": "1"}, {"n": "temperature", "v": 2}),
@@ -512,10 +525,12 @@ class TestCodecContract:
         assert bits(back.t) == bits(e.t)
 
     @pytest.mark.parametrize("codec", WITH_COVARIATES, ids=["json", "senml"])
-    def test_encode_reading_needs_every_input(self, codec: Codec) -> None:
-        """A reading lacking a configured covariate cannot be encoded."""
-        with pytest.raises(ValueError, match="no input 'rh'"):
-            codec.encode_reading(Reading(T0, "s", {"raw": 1.0, "temp": 2.0}))
+    def test_encode_reading_needs_the_raw_value(self, codec: Codec) -> None:
+        """A reading without its raw value cannot be encoded; absent covariates are left out."""
+        with pytest.raises(ValueError, match="no input 'raw'"):
+            codec.encode_reading(Reading(T0, "s", {"temp": 2.0}))
+        partial = Reading(T0, "s", {"raw": 1.0, "temp": 2.0})
+        assert codec.decode_reading("s", codec.encode_reading(partial)) == partial
 
     @pytest.mark.parametrize("codec", CODECS, ids=["json", "senml"])
     @given(c=corrected)

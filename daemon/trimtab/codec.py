@@ -281,8 +281,9 @@ def _check_inputs(covariates: Mapping[str, str], max_bytes: int) -> dict[str, st
 class JsonCodec:
     """Flat JSON objects with configurable field names, e.g. ``{"t": ..., "raw": 41.2}``.
 
-    A reading needs the time, the raw value and every covariate field (``covariates`` maps the
-    model's input name to the payload field); a reference needs the time and the value, and may
+    A reading needs the time and the raw value, and carries those covariate fields it has
+    (``covariates`` maps the model's input name to the payload field; the engine refuses a
+    reading that lacks one its sensor's model needs); a reference needs the time and the value, and may
     carry a window (null means none). Other fields are ignored. Corrected values are written
     with the fixed names of ``CORRECTED_FIELDS`` and repr floats, so they decode bit for bit.
     """
@@ -319,7 +320,8 @@ class JsonCodec:
         t = to_time(need(obj, self.time_field), f"field {self.time_field!r}")
         inputs = {"raw": self._field(obj, self.value_field)}
         for name, key in self.covariates.items():
-            inputs[name] = self._field(obj, key)
+            if key in obj:  # sensors differ in covariates: the engine checks what each needs
+                inputs[name] = self._field(obj, key)
         return Reading(t=t, sensor=sensor, inputs=inputs)
 
     def decode_reference(self, sensor: str, payload: bytes | bytearray) -> Reference:
@@ -336,8 +338,10 @@ class JsonCodec:
     def encode_reading(self, r: Reading) -> bytes:
         """The flat JSON object of a reading (for players and tests); ``ValueError`` if unfit."""
         obj: dict[str, object] = {self.time_field: float(r.t)}
-        for name, key in {"raw": self.value_field, **self.covariates}.items():
-            obj[key] = _input_of(r, name)
+        obj[self.value_field] = _input_of(r, "raw")
+        for name, key in self.covariates.items():
+            if name in r.inputs:
+                obj[key] = _input_of(r, name)
         return json.dumps(obj, allow_nan=False).encode("utf-8")
 
     def encode_reference(self, ref: Reference) -> bytes:
@@ -535,7 +539,11 @@ class SenmlCodec:
         validate_sensor_id(sensor)
         records = self._records(payload)
         wanted = {"raw": self.value_name, **self.covariates}
-        picked = {name: _pick(records, want) for name, want in wanted.items()}
+        picked = {"raw": _pick(records, self.value_name)}
+        for name, want in self.covariates.items():
+            found = _find(records, want)
+            if found is not None:  # the engine checks which covariates each sensor needs
+                picked[name] = found
         t = _same_time(list(picked.values()))
         inputs = {name: _number_of(rec, wanted[name]) for name, rec in picked.items()}
         return Reading(t=t, sensor=sensor, inputs=inputs)
@@ -565,7 +573,8 @@ class SenmlCodec:
     def encode_reading(self, r: Reading) -> bytes:
         """The SenML pack of a reading (for players and tests); ``ValueError`` if unfit."""
         wanted = {"raw": self.value_name, **self.covariates}
-        return self._pack(r.t, r.sensor, [(n, _input_of(r, k)) for k, n in wanted.items()])
+        return self._pack(r.t, r.sensor, [(n, _input_of(r, k)) for k, n in wanted.items()
+                                          if k == "raw" or k in r.inputs])
 
     def encode_reference(self, ref: Reference) -> bytes:
         """The SenML pack of a reference (for players and tests)."""

@@ -7,7 +7,6 @@ out, keeps its persistence file in its own directory and is stopped (or killed) 
 from __future__ import annotations
 
 import contextlib
-import os
 import shutil
 import signal
 import socket
@@ -36,11 +35,8 @@ def free_port() -> int:
 
 
 def mosquitto_path() -> str | None:
-    """The mosquitto binary on PATH (or in /usr/sbin), or None."""
-    found = shutil.which("mosquitto")
-    if found:
-        return found
-    return "/usr/sbin/mosquitto" if os.access("/usr/sbin/mosquitto", os.X_OK) else None
+    """The mosquitto binary on PATH, or None."""
+    return shutil.which("mosquitto")
 
 
 class PrivateBroker:

@@ -21,7 +21,7 @@ from paho.mqtt.enums import CallbackAPIVersion
 from trimtab.config import Config
 from trimtab.errors import DecodeError, TransportError
 from trimtab.messages import Corrected, Reading, Reference
-from trimtab.wiring import make_codec, topic_templates
+from trimtab.wiring import make_codec, status_topic, topic_templates
 
 Progress = Callable[[int, int], None]
 
@@ -150,3 +150,22 @@ class Recorder:
     def stop(self) -> None:
         self._client.disconnect()
         self._client.loop_stop()
+
+
+def wait_status(cfg: Config, host: str, port: int, want: str, timeout: float = 30.0) -> bool:
+    """Wait until the daemon's retained status topic says ``want`` (e.g. ``online``)."""
+    seen = threading.Event()
+    client = _client(f"trimtab-sim-status-{time.monotonic_ns()}")
+
+    def on_message(c: mqtt.Client, u: Any, msg: mqtt.MQTTMessage) -> None:
+        if msg.payload.decode(errors="replace") == want:
+            seen.set()
+
+    client.on_message = on_message
+    _connect(client, host, port, 10.0)
+    client.subscribe(status_topic(cfg), qos=1)
+    try:
+        return seen.wait(timeout)
+    finally:
+        client.disconnect()
+        client.loop_stop()
