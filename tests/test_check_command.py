@@ -15,7 +15,7 @@ from trimtab.config import load_config, parse_config
 
 ROOT = Path(__file__).resolve().parents[1]
 SECTIONS = {"broker", "topics", "payload", "sensors", "learning", "pairing", "output", "state",
-            "logging", "status"}
+            "logging", "status", "metrics"}
 
 
 def trimtab(*args: str, cwd: Path) -> subprocess.CompletedProcess[str]:

@@ -116,7 +116,7 @@ class TestErrorLists:
         """A step size outside [alpha_min, alpha_max] is refused with both bounds."""
         doc = minimal(learning={"alpha": 0.3, "alpha_max": 0.25})
         assert errors_of(doc) == [
-            "site.toml: learning.alpha: 0.3 is outside [alpha_min, alpha_max] = [0.001, 0.25] "
+            "site.toml: learning.alpha: 0.3 is outside [alpha_min, alpha_max] = [0.01, 0.25] "
             "(rule: alpha_min ≤ alpha ≤ alpha_max)"
         ]
 

@@ -50,6 +50,7 @@ __all__ = [
     "Config",
     "LearningSettings",
     "LoggingSettings",
+    "MetricsSettings",
     "OutputSettings",
     "PairingSettings",
     "PayloadSettings",
@@ -179,6 +180,10 @@ class TopicSettings(Section):
     qos: Annotated[int, Strict(), Field(ge=0, le=2)] = Field(
         default=1, description="MQTT QoS 0, 1 or 2"
     )
+    subscribe: Literal["wildcard", "per_sensor"] = Field(
+        default="wildcard",
+        description="one + filter per template, or one topic per listed sensor (ids only)",
+    )
 
     @field_validator("readings", "references", "corrected")
     @classmethod
@@ -252,9 +257,9 @@ class PayloadSettings(Section):
 class LearningSettings(Section):
     """The online step: step size and penalty with their bounds, loss, guards and memory."""
 
-    alpha: PosFloat = Field(default=0.05, description="starting step size α")
-    alpha_min: PosFloat = Field(default=0.001, description="α never halves below this")
-    alpha_max: PosFloat = Field(default=0.2, description="largest α; the stability proofs use it")
+    alpha: PosFloat = Field(default=0.5, description="starting step size α")
+    alpha_min: PosFloat = Field(default=0.01, description="α never halves below this")
+    alpha_max: PosFloat = Field(default=1.0, description="largest α; the stability proofs use it")
     lam: NonNegFloat = Field(
         default=1.0, alias="lambda", description="ridge penalty λ toward the prior"
     )
@@ -394,6 +399,19 @@ class StatusSettings(Section):
     interval: PosFloat = Field(default=60.0, description="s between retained statistics messages")
 
 
+class MetricsSettings(Section):
+    """The optional Prometheus endpoint (needs the ``metrics`` extra: prometheus-client)."""
+
+    enabled: Bool = Field(default=False, description="serve Prometheus metrics over HTTP")
+    host: Str = Field(default="127.0.0.1", description="address to bind; localhost by default")
+    port: Annotated[int, Strict(), Field(ge=1, le=65535)] = Field(
+        default=9478, description="TCP port of the metrics endpoint"
+    )
+    max_sensor_labels: Annotated[int, Strict(), Field(ge=0, le=100000)] = Field(
+        default=1000, description="most sensors given per-sensor series; the rest are counted"
+    )
+
+
 class Config(Section):
     """The whole configuration of one trimtab daemon."""
 
@@ -407,6 +425,7 @@ class Config(Section):
     state: StateSettings = Field(default_factory=lambda: StateSettings())
     logging: LoggingSettings = Field(default_factory=lambda: LoggingSettings())
     status: StatusSettings = Field(default_factory=lambda: StatusSettings())
+    metrics: MetricsSettings = Field(default_factory=lambda: MetricsSettings())
 
     def settings_groups(self) -> dict[str, SensorSettings]:
         """Every distinct resolved settings: ``sensors.defaults`` and each override, by path."""
@@ -429,16 +448,31 @@ class Config(Section):
         return self.sensors.allowed(sensor_id)
 
     def reference_targets(self, source_id: str) -> tuple[str, ...]:
-        """The sensors a reference stream serves: its shared list, else itself if served."""
+        """The sensors a reference stream serves here: its shared list, else itself if served.
+
+        Sensors of a shared list that another daemon serves (another shard, excluded, or still
+        incoming) are left out.
+        """
         shared = self.sensors._targets.get(source_id)
         if shared is not None:
-            return shared
+            return tuple(s for s in shared if self.sensor_allowed(s))
         return (source_id,) if self.sensor_allowed(source_id) else ()
+
+    def reference_incoming(self, source_id: str) -> bool:
+        """Whether a reference stream serves a sensor listed in ``sensors.incoming``."""
+        incoming = self.sensors.incoming
+        if not incoming:
+            return False
+        return source_id in incoming or any(
+            s in incoming for s in self.sensors._targets.get(source_id, ()))
 
     @model_validator(mode="after")
     def _rules(self) -> Config:
         p: Problems = []
         lc = self.learning
+        if self.topics.subscribe == "per_sensor" and self.sensors.pattern is not None:
+            p.append((("topics", "subscribe"), "per_sensor subscribes the topics of the ids "
+                      "listed; with sensors.pattern set, use wildcard"))
         for base, settings in self._groups():
             label = dotted(base)
             unknown = [x for x in settings.inputs[1:] if x not in self.payload.covariates]

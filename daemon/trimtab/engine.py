@@ -12,6 +12,7 @@ last reference. Event time is used throughout, never arrival time.
 
 from __future__ import annotations
 
+import json
 import math
 from collections import Counter
 from collections.abc import Mapping, Sequence
@@ -21,7 +22,7 @@ from typing import TYPE_CHECKING, Any
 from trimtab.errors import ModelError, StateError
 from trimtab.guards import Guard, GuardSettings
 from trimtab.messages import Corrected, Reading, Reference
-from trimtab.model import RidgeModel
+from trimtab.model import RidgeModel, shared
 from trimtab.pairing import Paired, ReadingBuffer, pair
 from trimtab.terms import Scaler, TermSpec
 
@@ -30,7 +31,10 @@ if TYPE_CHECKING:
 
 STATE_VERSION = 1
 DAY = 86400.0
+_PART_KEY = json.JSONEncoder(sort_keys=True).encode
 PENDING_LIMIT = 256
+SHARED_PARTS = 256
+"""Distinct spec and scaler parts of snapshots shared between sensors, at most."""
 """Paired references kept while a sensor's scaler is still being fixed from its readings."""
 
 
@@ -130,6 +134,9 @@ class Engine:
         self.counts: Counter[str] = Counter()
         self._cfg = cfg
         self._gs = self._guard_settings(cfg)
+        self._served: set[str] = set()
+        self._parts: dict[str, Any] = {}
+        self._specs: dict[int, tuple[SensorSettings, TermSpec]] = {}
 
     # -- configuration -------------------------------------------------------------------------
 
@@ -150,11 +157,18 @@ class Engine:
     def reconfigure(self, cfg: Config) -> None:
         """Apply a reloaded config's live settings (learning, output) to every sensor.
 
-        α restarts from the new configured value; the models keep what they learned.
+        When ``[learning]`` changed, α restarts from the new configured value (a rollback's
+        halving is forgotten); otherwise each sensor keeps its α. The models keep what they
+        learned either way.
         """
+        learning_changed = cfg.learning != self._cfg.learning
         self._cfg = cfg
         self._gs = self._guard_settings(cfg)
+        self._served = set()
+        self._specs = {}
         for st in self._sensors.values():
+            if not learning_changed:
+                continue
             if st.model is not None:
                 st.model = self._with_learning(st.model)
             st.guard.alpha = min(max(cfg.learning.alpha, cfg.learning.alpha_min),
@@ -182,7 +196,7 @@ class Engine:
         st = self._sensors.get(sensor)
         if st is None:
             settings = self._cfg.sensor_settings(sensor)
-            spec = spec_of(settings)
+            spec = self._spec_of(settings)
             pc = self._cfg.pairing
             st = SensorState(
                 settings, spec,
@@ -194,6 +208,15 @@ class Engine:
                 st.warm = True
             self._sensors[sensor] = st
         return st
+
+    def _spec_of(self, settings: SensorSettings) -> TermSpec:
+        """``spec_of(settings)``, built once per settings object (sensors share them)."""
+        found = self._specs.get(id(settings))
+        if found is not None and found[0] is settings:
+            return found[1]
+        spec = shared(spec_of(settings))
+        self._specs[id(settings)] = (settings, spec)
+        return spec
 
     def _new_model(self, st: SensorState, scaler: Scaler, origin: float) -> RidgeModel:
         lc = self._cfg.learning
@@ -240,24 +263,40 @@ class Engine:
         self.on_reference(event)
         return []
 
+    def _allowed(self, sensor: str) -> bool:
+        """``Config.sensor_allowed``, remembered for served sensors (they get state anyway)."""
+        if sensor in self._served:
+            return True
+        if not self._cfg.sensor_allowed(sensor):
+            return False
+        self._served.add(sensor)
+        return True
+
     def on_reading(self, r: Reading) -> Corrected | None:
         """Correct one reading and buffer its inputs for pairing."""
-        if not self._cfg.sensor_allowed(r.sensor):
+        if not self._allowed(r.sensor):
             self.counts["reading_unknown_sensor"] += 1
             return None
         st = self._state(r.sensor)
-        missing = [n for n in st.spec.inputs if n not in r.inputs]
-        if missing:
+        inputs = r.inputs
+        try:
+            values = [inputs[n] for n in st.spec.inputs]
+        except KeyError:
             self.counts["reading_missing_input"] += 1
             return None
-        raw = float(r.inputs[st.spec.inputs[0]])
+        if not (math.isfinite(r.t) and all(map(math.isfinite, values))):
+            # The codecs refuse these; a caller that skips them must not poison the buffer,
+            # the scaler or the reading clock.
+            self.counts["reading_non_finite"] += 1
+            return None
+        raw = float(values[0])
         fresh = st.last_reading_t is None or r.t > st.last_reading_t
         if not fresh and r.t == st.last_reading_t:
             self.counts["reading_duplicate"] += 1
             return None
         if fresh:
             st.last_reading_t = r.t
-            st.buffer.add(r.t, [float(r.inputs[n]) for n in st.spec.inputs])
+            st.buffer.add(r.t, [float(v) for v in values])
             self._ensure_model(st, r)
             self.counts["reading_accepted"] += 1
         else:
@@ -302,8 +341,10 @@ class Engine:
         return out
 
     def _reference_for(self, sensor: str, ref: Reference) -> tuple[str, float | None]:
-        if not self._cfg.sensor_allowed(sensor):
+        if not self._allowed(sensor):
             return "unknown_sensor", None
+        if not (math.isfinite(ref.t) and math.isfinite(ref.value)):
+            return "non_finite", None  # a NaN time would also defeat the at-most-once check
         st = self._state(sensor)
         # References must advance in time per sensor, whatever becomes of them: a redelivered
         # one is recognised and skipped, so each is applied at most once.
@@ -341,14 +382,18 @@ class Engine:
         if verdict == "suspect":
             st.guard.hold(phi, y)
             return "gated", residual
+        if verdict == "shift" and st.guard.flat_run(y):
+            return "stuck", residual  # the run stays held; a differing value can still end it
         if verdict == "shift":
+            # A new regime: restart the error baseline *before* learning it, or the shift's own
+            # large residuals would trip the rollback and the model could never follow it.
+            st.guard.restart_baseline(self._snapshot_of(model))
             for held_phi, held_y in st.guard.take_suspects():
                 self._apply(st, held_phi, held_y)
         status = self._apply(st, phi, y)
         if status == "applied":
             st.last_applied_t = ref_t
-            if verdict == "shift" and st.model is not None:
-                st.guard.restart_baseline(st.model.to_dict())
+            if verdict == "shift":
                 status = "level_shift"
         return status, residual
 
@@ -356,7 +401,7 @@ class Engine:
         """One guarded shrink-then-step update; returns the reference's status."""
         model = st.model
         assert model is not None
-        before = model.to_dict() if st.guard.snapshot is None else None
+        before = self._snapshot_of(model) if st.guard.snapshot is None else None
         if before is not None:
             st.guard.take_snapshot(before)
         saved = model.copy()
@@ -374,8 +419,30 @@ class Engine:
             self._restore(st)
             return "rolled_back"
         if st.guard.due_snapshot(self._gs):
-            st.guard.take_snapshot(model.to_dict())
+            st.guard.take_snapshot(self._snapshot_of(model))
         return "applied"
+
+    def _snapshot_of(self, model: RidgeModel) -> dict[str, Any]:
+        """``model.to_dict()`` sharing its spec, scaler and prior with other snapshots.
+
+        Those parts never change for a model, and sensors of one configuration have equal
+        ones: sharing them keeps a guard's snapshot small. Nothing mutates a snapshot.
+        """
+        d = model.to_dict()
+        self._share(d)
+        return d
+
+    def _share(self, snapshot: dict[str, Any]) -> None:
+        for key in ("spec", "scaler", "prior"):
+            part = snapshot.get(key)
+            if not isinstance(part, dict | list):
+                continue
+            ident = _PART_KEY(part)
+            shared = self._parts.get(ident)
+            if shared is None and len(self._parts) < SHARED_PARTS:
+                self._parts[ident] = shared = part
+            if shared is not None:
+                snapshot[key] = shared
 
     def _restore(self, st: SensorState) -> None:
         snap = st.guard.roll_back(self._gs)
@@ -390,7 +457,7 @@ class Engine:
             "model": None if st.model is None else st.model.to_dict(),
             "scaler_rows": st.scaler_rows,
             "pending": [[v, tp, y, rt] for v, tp, y, rt in st.pending],
-            "buffer": st.buffer.to_dict(),
+            "buffer": st.buffer.to_dict(packed=True),
             "guard": st.guard.to_dict(),
             "last_reading_t": st.last_reading_t,
             "last_ref_t": st.last_ref_t,
@@ -411,6 +478,8 @@ class Engine:
                       for v, tp, y, rt in d["pending"]]
         st.buffer = ReadingBuffer.from_dict(d["buffer"])
         st.guard = Guard.from_dict(d["guard"])
+        if isinstance(st.guard.snapshot, dict):
+            self._share(st.guard.snapshot)
         st.last_reading_t = d["last_reading_t"]
         st.last_ref_t = d["last_ref_t"]
         st.last_applied_t = d["last_applied_t"]
@@ -464,6 +533,7 @@ class Engine:
     def drop_sensor(self, sensor: str) -> None:
         """Forget a sensor (after it has been exported to another daemon)."""
         self._sensors.pop(sensor, None)
+        self._served.discard(sensor)
 
     def stats(self) -> dict[str, Any]:
         """Per-sensor figures for the status message and metrics."""

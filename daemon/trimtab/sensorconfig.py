@@ -30,6 +30,7 @@ from pydantic import (
 from pydantic_core import PydanticCustomError
 
 from trimtab.errors import DecodeError
+from trimtab.shards import shard_of
 from trimtab.terms import TermSpec
 from trimtab.topics import SENSOR_ID_PATTERN, validate_sensor_id
 
@@ -246,6 +247,18 @@ class SensorsSettings(Section):
     shared_references: tuple[SharedReference, ...] = Field(
         default=(), description="reference streams serving several sensors"
     )
+    shard_count: Annotated[int, Strict(), Field(ge=1, le=65536)] = Field(
+        default=1, description="hash shards the pattern-matched ids are split into"
+    )
+    shard_index: Annotated[int, Strict(), Field(ge=0, le=65535)] = Field(
+        default=0, description="this daemon's shard: CRC-32 of the id mod shard_count"
+    )
+    exclude: tuple[SensorId, ...] = Field(
+        default=(), description="ids never served here (moved to another daemon)"
+    )
+    incoming: tuple[SensorId, ...] = Field(
+        default=(), description="ids being moved here: subscribed and held until imported"
+    )
     _regex: re.Pattern[str] | None = PrivateAttr(None)
     _resolved: dict[str, SensorSettings] = PrivateAttr(default_factory=dict)
     _targets: dict[str, tuple[str, ...]] = PrivateAttr(default_factory=dict)
@@ -261,9 +274,18 @@ class SensorsSettings(Section):
         return value
 
     def allowed(self, sensor_id: str) -> bool:
-        """Whether a sensor is served: listed in ids or matched in full by pattern."""
+        """Whether a sensor is served: in ids, or matched by pattern in this hash shard.
+
+        ``exclude`` and ``incoming`` win over the pattern; ids are never in either.
+        """
         if sensor_id in self.ids:
             return True
+        if not self.matched(sensor_id) or sensor_id in self.exclude or sensor_id in self.incoming:
+            return False
+        return self.shard_count == 1 or shard_of(sensor_id, self.shard_count) == self.shard_index
+
+    def matched(self, sensor_id: str) -> bool:
+        """Whether ``pattern`` matches a valid sensor id in full (whatever its shard)."""
         if self._regex is None or self._regex.fullmatch(sensor_id) is None:
             return False
         try:
@@ -272,17 +294,29 @@ class SensorsSettings(Section):
             return False
         return True
 
+    def elsewhere(self, sensor_id: str) -> bool:
+        """Configured here but served by another daemon: excluded, another shard's, or a
+        shared reference stream none of whose sensors is served here."""
+        if self.allowed(sensor_id) or sensor_id in self.incoming:
+            return False
+        shared = self._targets.get(sensor_id)
+        if shared is not None:
+            return not any(self.allowed(x) or x in self.incoming for x in shared)
+        return sensor_id in self.exclude or self.matched(sensor_id)
+
+    def known(self, sensor_id: str) -> bool:
+        """Served here, incoming, or matched by the pattern in any shard (configurable here)."""
+        return sensor_id in self.ids or sensor_id in self.incoming or self.matched(sensor_id)
+
     @model_validator(mode="after")
     def _rules(self) -> SensorsSettings:
         p: Problems = []
         self._regex = re.compile(self.pattern) if self.pattern is not None else None
-        if not self.ids and self.pattern is None:
+        if not self.ids and self.pattern is None and not self.incoming:
             p.append((("ids",), "give ids, pattern or both; with neither no sensor is served"))
-        dupes = sorted({x for x in self.ids if self.ids.count(x) > 1})
-        if dupes:
-            p.append((("ids",), f"listed more than once: {dupes}"))
+        p.extend(_shard_problems(self))
         for sid, override in self.overrides.items():
-            if not self.allowed(sid):
+            if not self.known(sid):
                 p.append((("overrides", sid), _not_served(sid, self.pattern)))
                 continue
             merged = {**self.defaults.model_dump(), **override.model_dump(exclude_unset=True)}
@@ -300,13 +334,34 @@ class SensorsSettings(Section):
             self._targets[ref.source] = ref.serves
             for j, sid in enumerate(ref.serves):
                 where: Loc = ("shared_references", i, "serves", j)
-                if not self.allowed(sid):
+                if not self.known(sid):
                     p.append((where, _not_served(sid, self.pattern)))
                 elif sid in served_by:
                     p.append((where, f"{sid!r} is already served by {served_by[sid]!r}"))
                 served_by[sid] = ref.source
         refuse(p)
         return self
+
+
+def _shard_problems(s: SensorsSettings) -> Problems:
+    """Duplicates, overlaps of ids / exclude / incoming, and the hash shard's own rules."""
+    p: Problems = []
+    lists = {"ids": s.ids, "exclude": s.exclude, "incoming": s.incoming}
+    for name, items in lists.items():
+        dupes = sorted({x for x in items if items.count(x) > 1})
+        if dupes:
+            p.append(((name,), f"listed more than once: {dupes}"))
+    for a, b in (("ids", "exclude"), ("ids", "incoming"), ("incoming", "exclude")):
+        both = sorted(set(lists[a]) & set(lists[b]))
+        if both:
+            p.append(((b,), f"{both} also listed in sensors.{a}; a sensor is in one of them"))
+    if s.shard_index >= s.shard_count:
+        p.append((("shard_index",), f"{s.shard_index} is not below shard_count = "
+                  f"{s.shard_count} (rule: 0 ≤ shard_index < shard_count)"))
+    if s.shard_count > 1 and s.pattern is None:
+        p.append((("shard_count",), "hash shards split the ids sensors.pattern matches; set "
+                  "a pattern (ids listed in sensors.ids are always served, whatever the shard)"))
+    return p
 
 
 def _not_served(sid: str, pattern: str | None) -> str:

@@ -22,11 +22,13 @@ from types import FrameType
 from typing import TYPE_CHECKING, Any
 
 from trimtab.engine import Engine
-from trimtab.errors import ConfigError, DecodeError
+from trimtab.errors import ConfigError, DecodeError, StateError
 from trimtab.logs import configure_logging, get_logger
-from trimtab.messages import Reading, Reference
+from trimtab.messages import Corrected, Reading, Reference
+from trimtab.metrics import Metrics
 from trimtab.notify import Notifier
 from trimtab.records import event_to_record, record_to_event
+from trimtab.shards import HeldFile, SubscriptionLedger, plan_subscriptions, release
 from trimtab.statestore import StateStore
 from trimtab.transport import Endpoint, Transport, read_password
 from trimtab.wiring import make_codec, make_engine, status_topic, topic_templates
@@ -39,6 +41,7 @@ log = get_logger("trimtab.service")
 QUEUE_LIMIT = 20000
 BATCH = 512
 BURST_QUIET = 10.0
+METRICS_REFRESH = 2.0
 
 
 @dataclass(frozen=True, slots=True)
@@ -49,6 +52,7 @@ class Inbound:
     payload: bytes
     mid: int
     qos: int
+    arrived: float = 0.0
 
 
 class RejectLog:
@@ -107,6 +111,15 @@ class Service:
         self.rejects = RejectLog()
         self.inbox: queue.Queue[Inbound] = queue.Queue(QUEUE_LIMIT)
         self.dropped = 0
+        self.inbox_full = 0
+        self.foreign = 0
+        self.held = HeldFile(Path(cfg.state.dir), cfg.state.durability)
+        self.metrics = (Metrics(cfg.metrics, pinned=cfg.sensors.ids)
+                        if cfg.metrics.enabled else None)
+        self._checkpoint_at = time.monotonic()
+        self._journal_since: float | None = None
+        self._journal_records = 0
+        self._backlog: list[Corrected] = []
         self._stop = threading.Event()
         self._reload = threading.Event()
         self._dirty = False
@@ -115,8 +128,15 @@ class Service:
     # -- network thread side -------------------------------------------------------------------
 
     def _enqueue(self, topic: str, payload: bytes, mid: int, qos: int) -> None:
+        item = Inbound(topic, payload, mid, qos, time.monotonic())
         try:
-            self.inbox.put(Inbound(topic, payload, mid, qos), timeout=1.0)
+            self.inbox.put_nowait(item)
+            return
+        except queue.Full:
+            # Backpressure: the network thread waits, so TCP holds the backlog at the broker.
+            self.inbox_full += 1
+        try:
+            self.inbox.put(item, timeout=1.0)
         except queue.Full:
             # Not acknowledged: a QoS 1 message comes again after the next reconnect.
             self.dropped += 1
@@ -132,46 +152,110 @@ class Service:
             self.engine.process(record_to_event(record))
         log.info("state_recovered", generation=rec.generation, journal_records=len(rec.records),
                  torn_bytes=rec.torn_bytes, sensors=len(self.engine.sensors()))
+        self._journal_records = len(rec.records)
+        self._journal_since = time.monotonic() if rec.records else None
         return len(rec.records)
+
+    def release_held(self) -> int:
+        """Feed held events of sensors served now (their state imported) first; returns how many.
+
+        See :func:`trimtab.shards.release`; their corrected values are published once connected.
+        """
+        records = self.held.records()
+        if not records:
+            return 0
+        out = release(records, self.cfg, self.engine, self.store.append)
+        if out.fed:
+            self.checkpoint()
+        self.held.keep_only(out.keep)
+        self._backlog.extend(out.corrected)
+        log.info("held_events_released", fed=out.fed, still_held=len(out.keep))
+        return out.fed
 
     # -- message handling ----------------------------------------------------------------------
 
-    def decode(self, msg: Inbound) -> Reading | Reference:
-        """Topic and payload to an event; DecodeError with a reason otherwise."""
+    def decode(self, msg: Inbound) -> tuple[Reading | Reference, bool, bool]:
+        """Topic and payload to (event, serve it, hold it); DecodeError with a reason otherwise.
+
+        The reason ``foreign`` marks a sensor this daemon knows another daemon serves.
+        """
+        sensors = self.cfg.sensors
         sensor = self.t_readings.match(msg.topic)
         if sensor is not None:
-            if not self.cfg.sensor_allowed(sensor):
-                raise DecodeError("unknown_sensor", sensor)
-            return self.codec.decode_reading(sensor, msg.payload)
+            serve = self.cfg.sensor_allowed(sensor)
+            hold = not serve and sensor in sensors.incoming
+            if not (serve or hold):
+                raise DecodeError("foreign" if sensors.elsewhere(sensor) else "unknown_sensor",
+                                  sensor)
+            return self.codec.decode_reading(sensor, msg.payload), serve, hold
         source = self.t_references.match(msg.topic)
         if source is not None:
-            if not any(self.cfg.sensor_allowed(s) for s in self.cfg.reference_targets(source)):
-                raise DecodeError("unknown_sensor", source)
-            return self.codec.decode_reference(source, msg.payload)
+            serve = bool(self.cfg.reference_targets(source))
+            hold = self.cfg.reference_incoming(source)
+            if not (serve or hold):
+                raise DecodeError("foreign" if sensors.elsewhere(source) else "unknown_sensor",
+                                  source)
+            return self.codec.decode_reference(source, msg.payload), serve, hold
         raise DecodeError("unknown_topic", msg.topic)
 
     def handle_batch(self, batch: list[Inbound]) -> None:
         """Decode, journal, process and publish a batch; make it durable; then acknowledge."""
         assert self.transport is not None
         qos_out = self.cfg.topics.qos
-        has_reference = False
+        has_reference = held = False
+        received: Counter[str] = Counter()
+        published: Counter[str] = Counter()
+        records: list[dict[str, Any]] = []
+        events: list[Reading | Reference] = []
         for msg in batch:
             try:
-                event = self.decode(msg)
+                event, serve, hold = self.decode(msg)
             except DecodeError as exc:
-                self.rejects.reject(exc.reason, exc.detail, msg.topic)
+                if exc.reason == "foreign":  # another daemon's sensor: counted, never logged
+                    self.foreign += 1
+                    received["foreign"] += 1
+                else:
+                    self.rejects.reject(exc.reason, exc.detail, msg.topic)
+                    received["rejected"] += 1
                 continue
-            self.store.append(event_to_record(event))
+            record = event_to_record(event)
+            if hold:
+                self.held.append(record)
+                held = True
+            if not serve:
+                received["held"] += 1
+                continue
+            received["processed"] += 1
+            records.append(record)
+            events.append(event)
+        if records:
+            # The whole batch is journaled, with one write, before the engine sees any of it.
+            self.store.append_many(records)
+            self._journal_records += len(records)
+            if self._journal_since is None:
+                self._journal_since = time.monotonic()
             self._dirty = True
+        for event in events:
             if isinstance(event, Reference):
                 has_reference = True
-            for c in self.engine.process(event):
-                self.transport.publish(self.t_corrected.format(c.sensor),
-                                       self.codec.encode_corrected(c), qos=qos_out)
+                outcomes = self.engine.on_reference(event)
+                if self.metrics is not None:
+                    self.metrics.references(outcomes)
+                continue
+            c = self.engine.on_reading(event)
+            if c is not None:
+                info = self.transport.publish(self.t_corrected.format(c.sensor),
+                                              self.codec.encode_corrected(c), qos=qos_out)
+                published["sent" if info.rc == 0 else "failed"] += 1
         if has_reference:
             self.store.sync()
+        if held:
+            self.held.sync()
         for msg in batch:
             self.transport.ack(msg.mid, msg.qos)
+        if self.metrics is not None:
+            now = time.monotonic()
+            self.metrics.batch(received, published, (now - m.arrived for m in batch))
 
     def _drain(self) -> list[Inbound]:
         try:
@@ -192,6 +276,9 @@ class Service:
         """Write a checkpoint of the engine's whole state (and start a new journal)."""
         gen = self.store.checkpoint(self.engine.state_dict())
         self._dirty = False
+        self._checkpoint_at = time.monotonic()
+        self._journal_since = None
+        self._journal_records = 0
         log.info("checkpoint_written", generation=gen)
 
     def publish_stats(self) -> None:
@@ -200,7 +287,10 @@ class Service:
         stats = self.engine.stats()
         stats["rejected"] = dict(self.rejects.total)
         stats["dropped"] = self.dropped
+        stats["inbox_full"] = self.inbox_full
         stats["reconnects"] = self.transport.reconnects
+        stats["foreign"] = self.foreign
+        stats["held"] = {"count": self.held.count, "first_t": dict(self.held.first_t)}
         payload = json.dumps(stats, separators=(",", ":"), allow_nan=False).encode()
         self.transport.publish(status_topic(self.cfg) + "/stats", payload, qos=1, retain=True)
 
@@ -213,7 +303,8 @@ class Service:
         except ConfigError as exc:
             log.error("config_reload_failed", errors=exc.errors)
             return
-        restart = [name for name in ("broker", "topics", "payload", "sensors", "pairing", "state")
+        restart = [name for name in ("broker", "topics", "payload", "sensors", "pairing", "state",
+                                     "metrics")
                    if getattr(new, name) != getattr(self.cfg, name)]
         if restart:
             log.warning("config_reload_needs_restart", sections=restart)
@@ -248,18 +339,50 @@ class Service:
             for sig, handler in previous.items():
                 signal.signal(sig, handler)
 
+    def _stale_filters(self, ledger: SubscriptionLedger, wanted: list[str]) -> list[str]:
+        try:
+            return ledger.stale(wanted)
+        except StateError as exc:  # worst case an old filter stays: its messages are dropped
+            log.warning("subscription_ledger_unreadable", error=str(exc))
+            return []
+
+    def refresh_metrics(self) -> None:
+        """Give the metrics endpoint a fresh snapshot (main thread)."""
+        if self.metrics is None or self.transport is None:
+            return
+        now = time.monotonic()
+        self.metrics.refresh(
+            self.engine, connected=self.transport.connected.is_set(),
+            reconnects=self.transport.reconnects, checkpoint_age=now - self._checkpoint_at,
+            journal_age=0.0 if self._journal_since is None else now - self._journal_since,
+            journal_records=self._journal_records, held=self.held.count,
+            rejected=self.rejects.total,
+        )
+
     def _serve(self) -> None:
         self.recover()
-        subs = [(self.t_readings.filter, self.cfg.topics.qos),
-                (self.t_references.filter, self.cfg.topics.qos)]
-        self.transport = Transport(endpoint_of(self.cfg), subs, self._enqueue,
-                                   status_topic=status_topic(self.cfg))
+        self.release_held()
+        self.held.open()
+        if self.metrics is not None:
+            self.metrics.start()  # before connecting: a port in use stops the start
+        qos = self.cfg.topics.qos
+        wanted = plan_subscriptions(self.cfg)
+        ledger = SubscriptionLedger(Path(self.cfg.state.dir))
+        stale = self._stale_filters(ledger, wanted)
+        self.transport = Transport(endpoint_of(self.cfg), [(f, qos) for f in wanted],
+                                   self._enqueue, status_topic=status_topic(self.cfg),
+                                   unsubscribe=stale)
         self.transport.start()
+        for c in self._backlog:  # corrected values of released held readings
+            self.transport.publish(self.t_corrected.format(c.sensor),
+                                   self.codec.encode_corrected(c), qos=qos)
+        self._backlog = []
         log.info("service_started", client_id=self.cfg.broker.client_id,
-                 state_dir=str(self.cfg.state.dir))
+                 state_dir=str(self.cfg.state.dir), filters=len(wanted))
         now = time.monotonic()
         next_checkpoint = now + self.cfg.state.checkpoint_every
         next_stats = now + self.cfg.status.interval
+        next_metrics = now
         wd_interval = self.notifier.watchdog_interval
         next_watchdog = now
         ready = False
@@ -271,6 +394,15 @@ class Service:
             if not ready and self.transport.subscribed.is_set():
                 ready = True
                 self.notifier.ready()
+                try:
+                    ledger.write(wanted)
+                except OSError as exc:
+                    log.warning("subscription_ledger_not_written", error=str(exc))
+                if stale:
+                    log.info("subscriptions_removed", filters=stale)
+            if self.metrics is not None and now >= next_metrics:
+                next_metrics = now + METRICS_REFRESH
+                self.refresh_metrics()
             if self._reload.is_set():
                 self._reload.clear()
                 self.reload()
@@ -296,5 +428,8 @@ class Service:
             if self.transport.connected.is_set():
                 self.publish_stats()
             self.transport.stop(offline=True)
+        if self.metrics is not None:
+            self.metrics.stop()
+        self.held.close()
         self.store.close()
         log.info("service_stopped")

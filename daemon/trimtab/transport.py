@@ -19,7 +19,7 @@ import socket
 import ssl
 import threading
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -34,6 +34,9 @@ from trimtab.errors import ConfigError, TransportError
 from trimtab.logs import get_logger
 
 log = get_logger("trimtab.transport")
+
+RECEIVE_MAXIMUM = 1000
+"""Unacknowledged QoS 1 messages the broker may push to us; well below the service's queue."""
 
 MessageHandler = Callable[[str, bytes, int, int], None]
 """Called on the network thread with (topic, payload, mid, qos); must return quickly."""
@@ -50,7 +53,7 @@ class Endpoint:
     keepalive: int = 30
     session_expiry: int = 86400
     username: str | None = None
-    password: str | None = None
+    password: str | None = field(default=None, repr=False)  # never in a log line or traceback
     tls: bool = False
     ca_file: str | None = None
     cert_file: str | None = None
@@ -103,9 +106,13 @@ class Transport:
         *,
         status_topic: str | None = None,
         on_connected: Callable[[], None] | None = None,
+        unsubscribe: Sequence[str] = (),
     ) -> None:
         self.endpoint = endpoint
         self.subscriptions = list(subscriptions)
+        # Filters an earlier run subscribed that this one does not want: a persistent session
+        # keeps its subscriptions, so they are removed at every connect (harmless if gone).
+        self.unsubscriptions = list(unsubscribe)
         self._handler = on_message
         self._on_connected = on_connected
         self.status_topic = status_topic
@@ -113,6 +120,7 @@ class Transport:
         self.subscribed = threading.Event()
         self.reconnects = 0
         self.callback_errors = 0
+        self._had_session = False
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
         self._backoff = Backoff()
@@ -156,6 +164,10 @@ class Transport:
             return None
         props = Properties(PacketTypes.CONNECT)  # type: ignore[no-untyped-call]
         props.SessionExpiryInterval = self.endpoint.session_expiry
+        # Flow control (MQTT 5 Receive Maximum; absent means 65535): a broker that honours it
+        # keeps a backlog in its own queue. Mosquitto 2.0.11 was seen here to exceed it once
+        # acknowledgements flow; the service's bounded inbox then pushes back over TCP.
+        props.ReceiveMaximum = RECEIVE_MAXIMUM
         return props
 
     # -- callbacks (network thread: hand on, never raise) ---------------------------------------
@@ -174,6 +186,13 @@ class Transport:
             session = bool(getattr(flags, "session_present", False))
             log.info("mqtt_connected", host=self.endpoint.host, port=self.endpoint.port,
                      session_present=session)
+            if self._had_session and not session:
+                # The broker forgot us (restarted without persistence, or the session expired):
+                # what was published while we were away is gone. Say so; we resubscribe below.
+                log.warning("mqtt_session_lost", host=self.endpoint.host, port=self.endpoint.port)
+            self._had_session = True
+            if self.unsubscriptions:
+                client.unsubscribe(list(self.unsubscriptions))
             if self.subscriptions:
                 if self.endpoint.protocol == "5":
                     opts = [(t, SubscribeOptions(qos=q)) for t, q in self.subscriptions]
