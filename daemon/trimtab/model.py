@@ -8,9 +8,8 @@ from __future__ import annotations
 
 import enum
 import math
-import operator
-from collections.abc import Mapping, Sequence
-from typing import Any
+from collections.abc import Callable, Mapping, Sequence
+from typing import Any, TypeVar
 
 import numpy as np
 from numpy.typing import NDArray
@@ -33,6 +32,55 @@ class _Keep(enum.Enum):
 
 KEEP = _Keep.KEEP
 """Sentinel for :meth:`RidgeModel.with_settings`: leave this setting as it is."""
+
+
+def dot(a: Sequence[float], b: Sequence[float]) -> float:
+    """Σ a_j·b_j added strictly left to right from 0.0.
+
+    The order is part of the contract: the vectorised tuner (:mod:`trimtab.vengine`) repeats
+    it on arrays to give the same bits, and ``sum()`` cannot promise an order (Python 3.12
+    changed its float algorithm to a compensated one).
+    """
+    acc = 0.0
+    for x, y in zip(a, b, strict=True):
+        acc += x * y
+    return acc
+
+
+_SHARED: dict[tuple[str, str], object] = {}
+_SHARED_LIMIT = 1024
+_Part = TypeVar("_Part", TermSpec, Scaler, tuple[float, ...])
+
+
+def shared(part: _Part) -> _Part:
+    """One instance of each equal spec, scaler or prior (immutable), for models to share.
+
+    Thousands of sensors of one configuration have equal specs, and equal scalers when
+    centre and scale are configured; each would otherwise hold its own copy. At most
+    ``_SHARED_LIMIT`` distinct parts are remembered; past that a part is used as it is.
+    """
+    key = (type(part).__name__, repr(part))  # repr, not ==: it tells -0.0 from 0.0
+    found = _SHARED.get(key)
+    if found is not None:
+        return found  # type: ignore[return-value]
+    if len(_SHARED) < _SHARED_LIMIT:
+        _SHARED[key] = part
+    return part
+
+
+def _parsed(d: Any, parse: Callable[[Any], _Part]) -> _Part:
+    """``shared(parse(d))``, skipping the parse (and its checks) for a form seen before."""
+    try:
+        key = ("form", repr(d))
+    except RecursionError:
+        return shared(parse(d))
+    found = _SHARED.get(key)
+    if found is not None:
+        return found  # type: ignore[return-value]
+    part = shared(parse(d))
+    if len(_SHARED) < _SHARED_LIMIT:
+        _SHARED[key] = part
+    return part
 
 
 def factory_prior(spec: TermSpec, scaler: Scaler) -> list[float]:
@@ -223,6 +271,21 @@ class RidgeModel:
         ``clip`` is set, in which case it is clipped like any other far-out value.
         """
         row = self._spec.row(inputs, t, self._origin)
+        z = [(v - c) / s for v, c, s in zip(row, self._centre, self._scale, strict=True)]
+        total = sum(z)
+        if total - total == 0.0:
+            # Every term is finite (a NaN or infinity, in an input, the time or an overflowed
+            # term, makes the sum non-finite): the checks below cannot fire. The values are
+            # the same expressions as below, so the result is the same bits.
+            zmax = max(map(abs, z))
+            clip = self._clip
+            if clip is not None and zmax > clip:
+                z = [clip if x > clip else -clip if x < -clip else x for x in z]
+            return [1.0, *z], zmax
+        return self._phi_checked(row, t)
+
+    def _phi_checked(self, row: list[float], t: float) -> tuple[list[float], float]:
+        """:meth:`phi` term by term, naming the first term that is not finite."""
         for name, v in zip(self._spec.inputs, row, strict=False):
             if not math.isfinite(v):
                 raise ModelError(f"input {name!r} = {v} is not finite")
@@ -248,7 +311,7 @@ class RidgeModel:
         """ŷ = θ·φ."""
         if len(phi) != len(self._theta):
             raise ModelError(f"phi has {len(phi)} entries; the model has {len(self._theta)}")
-        return float(sum(map(operator.mul, self._theta, phi)))
+        return dot(self._theta, phi)
 
     def predict(self, inputs: Mapping[str, float], t: float) -> float:
         """The corrected value for one reading's inputs at time t."""
@@ -268,12 +331,12 @@ class RidgeModel:
         theta = self._theta
         # θ is always finite, so a finite r also proves every φ_j finite (inf·θ_j or 0·inf
         # would make r inf or nan): one check instead of k.
-        r = float(sum(map(operator.mul, theta, phi))) - y
+        r = dot(theta, phi) - y
         if not math.isfinite(r):
             raise ModelError(f"residual {r} is not finite (a non-finite feature or overflow)")
         delta = self._huber_delta
         psi = r if delta is None else max(-delta, min(delta, r))
-        a = alpha / (1.0 + sum(v * v for v in phi)) if self._normalised else alpha
+        a = alpha / (1.0 + dot(phi, phi)) if self._normalised else alpha
         shrink = 1.0 - a * self._lam / self._memory
         if shrink <= 0.0:
             raise ModelError(
@@ -417,8 +480,8 @@ class RidgeModel:
         extra = sorted(set(d) - _STATE_KEYS)
         if extra:
             raise DataError(f"model: unknown key {extra[0]!r}")
-        spec = TermSpec.from_dict(d["spec"])
-        scaler = Scaler.from_dict(d["scaler"])
+        spec = _parsed(d["spec"], TermSpec.from_dict)
+        scaler = _parsed(d["scaler"], Scaler.from_dict)
         kw: dict[str, Any] = {
             name: as_float(d[name], f"model.{name}")
             for name in ("origin", "lam", "memory", "spread", "spread_decay")
@@ -436,9 +499,11 @@ class RidgeModel:
         kw["prior"] = float_list(d["prior"], "model.prior")
         kw["theta"] = float_list(d["theta"], "model.theta")
         try:
-            return cls(spec, scaler, **kw)
+            model = cls(spec, scaler, **kw)
         except ModelError as exc:
             raise DataError(f"model: {exc}") from exc
+        model._prior = shared(model._prior)  # equal across sensors of one configuration
+        return model
 
 
 def _rho(r: NDArray[np.float64], delta: float | None) -> NDArray[np.float64]:

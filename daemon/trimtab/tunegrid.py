@@ -1,0 +1,241 @@
+"""Candidate learning settings for ``trimtab tune``: a grid file, a seeded search, the validator.
+
+A candidate sets some of the six tuned keys of ``[learning]`` — ``alpha``, ``lambda``,
+``memory``, ``huber_delta``, ``gate_k``, ``normalised`` — and takes every other key from the
+config being tuned. Each candidate is merged into the config's own TOML document and run
+through :func:`trimtab.config.parse_config`, so it is refused for exactly the reasons
+``trimtab check`` would give; a refused candidate is reported with those reasons and never
+evaluated.
+
+Grid file (TOML, one table; every key optional, each a non-empty list)::
+
+    [grid]
+    alpha = [0.01, 0.02, 0.05, 0.1]
+    lambda = [0.1, 1.0, 10.0]
+    memory = [100, 200, 400]
+    huber_delta = ["none", 2.0]      # "none": the squared loss (the key left unset)
+    gate_k = [3.0, 4.0]
+    normalised = [true, false]
+
+The candidates are every combination, in the order of the keys above, the last varying
+fastest.
+"""
+
+from __future__ import annotations
+
+import copy
+import itertools
+import math
+import os
+import tomllib
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from trimtab.config import Config, parse_config
+from trimtab.errors import ConfigError, DataError
+
+__all__ = [
+    "MAX_CANDIDATES",
+    "TUNED",
+    "Candidate",
+    "Value",
+    "build_candidates",
+    "current_settings",
+    "grid_settings",
+    "load_grid",
+    "search_settings",
+]
+
+TUNED = ("alpha", "lambda", "memory", "huber_delta", "gate_k", "normalised")
+"""The ``[learning]`` keys a candidate may set, as the config file spells them."""
+
+MAX_CANDIDATES = 10000
+
+Value = float | int | bool | None
+_NUMBER_KEYS = ("alpha", "lambda", "gate_k")
+
+
+@dataclass(frozen=True, slots=True)
+class Candidate:
+    """One candidate: its tuned settings and either its validated config or why it was refused."""
+
+    index: int
+    settings: Mapping[str, Value]
+    config: Config | None
+    refused: tuple[str, ...] = ()
+    labels: tuple[str, ...] = field(default=())
+    """Where it came from: ``"current"`` (the config's own settings), ``"grid"``, ``"search"``."""
+
+    @property
+    def valid(self) -> bool:
+        """Whether the validator accepted it (only valid candidates are evaluated)."""
+        return self.config is not None
+
+
+def current_settings(cfg: Config) -> dict[str, Value]:
+    """The tuned keys' values in a config."""
+    lc = cfg.learning
+    return {"alpha": lc.alpha, "lambda": lc.lam, "memory": lc.memory,
+            "huber_delta": lc.huber_delta, "gate_k": lc.gate_k, "normalised": lc.normalised}
+
+
+def _is_number(v: object) -> bool:
+    return isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v)
+
+
+def _check_value(key: str, v: object, where: str) -> Value:
+    if key in _NUMBER_KEYS:
+        if not _is_number(v):
+            raise DataError(f"{where}: expected a finite number, got {v!r}")
+        return float(v)  # type: ignore[arg-type]
+    if key == "memory":
+        if isinstance(v, bool) or not isinstance(v, int):
+            raise DataError(f"{where}: expected an integer count of references, got {v!r}")
+        return v
+    if key == "huber_delta":
+        if v == "none":
+            return None
+        if not _is_number(v):
+            raise DataError(f'{where}: expected a finite number or "none", got {v!r}')
+        return float(v)  # type: ignore[arg-type]
+    if not isinstance(v, bool):
+        raise DataError(f"{where}: expected true or false, got {v!r}")
+    return v
+
+
+def load_grid(path: str | os.PathLike[str]) -> dict[str, list[Value]]:
+    """Read a grid file; DataError names the file, the key and the item on any problem."""
+    source = os.fspath(path)
+    try:
+        with open(source, "rb") as fh:
+            data = tomllib.load(fh)
+    except FileNotFoundError:
+        raise DataError(f"{source}: grid file not found") from None
+    except OSError as exc:
+        raise DataError(f"{source}: cannot read the grid file: {exc.strerror}") from exc
+    except (UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
+        raise DataError(f"{source}: not a TOML file: {exc}") from None
+    extra = sorted(set(data) - {"grid"})
+    if extra:
+        raise DataError(f"{source}: {extra[0]}: unknown table; a grid file has one [grid] table")
+    grid = data.get("grid")
+    if not isinstance(grid, dict) or not grid:
+        raise DataError(f"{source}: grid: missing or empty [grid] table; give lists for some of "
+                        f"{', '.join(TUNED)}")
+    out: dict[str, list[Value]] = {}
+    for key in grid:
+        if key not in TUNED:
+            raise DataError(f"{source}: grid.{key}: unknown key; the tuned keys are "
+                            f"{', '.join(TUNED)}")
+    for key in TUNED:
+        if key not in grid:
+            continue
+        values = grid[key]
+        if not isinstance(values, list) or not values:
+            raise DataError(f"{source}: grid.{key}: expected a non-empty list")
+        checked = [_check_value(key, v, f"{source}: grid.{key}[{i}]")
+                   for i, v in enumerate(values)]
+        out[key] = list(dict.fromkeys(checked))  # duplicates once, first order kept
+    n = math.prod(len(v) for v in out.values())
+    if n > MAX_CANDIDATES:
+        raise DataError(f"{source}: the grid makes {n} candidates; at most {MAX_CANDIDATES}")
+    return out
+
+
+def grid_settings(cfg: Config, grid: Mapping[str, Sequence[Value]]) -> list[dict[str, Value]]:
+    """Every combination of the grid's lists; keys the grid leaves out keep the config's value."""
+    base = current_settings(cfg)
+    keys = [k for k in TUNED if k in grid]
+    out = []
+    for combo in itertools.product(*(grid[k] for k in keys)):
+        s = dict(base)
+        s.update(zip(keys, combo, strict=True))
+        out.append(s)
+    return out
+
+
+def _round(x: float, lo: float, hi: float) -> float:
+    """Three significant digits, kept inside [lo, hi]."""
+    return min(max(float(f"{x:.3g}"), lo), hi)
+
+
+def search_settings(cfg: Config, n: int, seed: int) -> list[dict[str, Value]]:
+    """``n`` seeded random candidates: α and λ log-uniform inside the config's own bounds.
+
+    α is drawn from [alpha_min, alpha_max]; λ from [lambda_min, lambda_max], or from
+    [lambda_max/1000, lambda_max] when lambda_min is 0 (a log scale cannot reach 0), and is 0
+    when lambda_max is. Values are rounded to three significant digits; the other tuned keys
+    keep the config's values.
+    """
+    if n < 1 or n > MAX_CANDIDATES:
+        raise DataError(f"--search {n}: give between 1 and {MAX_CANDIDATES} candidates")
+    lc = cfg.learning
+    rng = np.random.default_rng(seed)
+    base = current_settings(cfg)
+    lam_lo = lc.lambda_min if lc.lambda_min > 0.0 else lc.lambda_max / 1000.0
+    out = []
+    for _ in range(n):
+        s = dict(base)
+        u_a, u_l = rng.random(2)
+        s["alpha"] = _round(math.exp(math.log(lc.alpha_min) + u_a * math.log(
+            lc.alpha_max / lc.alpha_min)), lc.alpha_min, lc.alpha_max)
+        if lc.lambda_max > 0.0:
+            s["lambda"] = _round(math.exp(math.log(lam_lo) + u_l * math.log(
+                lc.lambda_max / lam_lo)), lc.lambda_min, lc.lambda_max)
+        else:
+            s["lambda"] = 0.0
+        out.append(s)
+    return out
+
+
+def _merged(raw: Mapping[str, Any], settings: Mapping[str, Value]) -> dict[str, Any]:
+    data = copy.deepcopy(dict(raw))
+    learning = data.get("learning")
+    if not isinstance(learning, dict):
+        learning = data["learning"] = {}
+    for key, value in settings.items():
+        if value is None:
+            learning.pop(key, None)
+        else:
+            learning[key] = value
+    return data
+
+
+def build_candidates(raw: Mapping[str, Any], cfg: Config,
+                     settings: Sequence[Mapping[str, Value]], *, label: str,
+                     include_current: bool = True) -> list[Candidate]:
+    """Validate each setting merged into the config's TOML document ``raw``.
+
+    With ``include_current`` the config's own settings come first (labelled ``current``)
+    unless one of ``settings`` equals them, which is then labelled so. Settings that repeat
+    an earlier one are dropped.
+    """
+    cur = current_settings(cfg)
+    wanted: list[tuple[dict[str, Value], list[str]]] = []
+    seen: dict[tuple[tuple[str, Value], ...], int] = {}
+
+    def key_of(s: Mapping[str, Value]) -> tuple[tuple[str, Value], ...]:
+        return tuple((k, s[k]) for k in TUNED)
+
+    if include_current and not any(key_of(s) == key_of(cur) for s in settings):
+        wanted.append((dict(cur), ["current"]))
+        seen[key_of(cur)] = 0
+    for s in settings:
+        k = key_of(s)
+        if k in seen:
+            continue
+        seen[k] = len(wanted)
+        labels = [label, "current"] if include_current and k == key_of(cur) else [label]
+        wanted.append((dict(s), labels))
+    out = []
+    for i, (s, labels) in enumerate(wanted):
+        try:
+            c: Config | None = parse_config(_merged(raw, s), f"candidate {i}")
+            refused: tuple[str, ...] = ()
+        except ConfigError as exc:
+            c, refused = None, tuple(exc.errors)
+        out.append(Candidate(i, s, c, refused, tuple(labels)))
+    return out
