@@ -1,4 +1,10 @@
-"""Shared fixtures: a private Mosquitto broker and a temporary state directory."""
+"""Shared fixtures: a private broker and a temporary state directory.
+
+The broker is a private Mosquitto on a free loopback port. On a machine without the
+``mosquitto`` binary the broker tests run on the embedded pure-Python broker (amqtt, MQTT
+3.1.1) instead, and the tests marked ``persistence`` — which need Mosquitto's own persistent
+sessions, restarts or TLS — skip with that reason.
+"""
 
 from __future__ import annotations
 
@@ -8,18 +14,34 @@ from pathlib import Path
 import pytest
 
 from trimtab_sim.broker import PrivateBroker, mosquitto_path
+from trimtab_sim.embedded_broker import EmbeddedBroker
+from trimtab_sim.embedded_broker import available as embedded_available
+
+from . import support
 
 
 @pytest.fixture
-def broker(tmp_path: Path) -> Iterator[PrivateBroker]:
-    """A private Mosquitto on a free loopback port with persistence, stopped after the test."""
-    if mosquitto_path() is None:
-        pytest.skip("mosquitto binary not found on PATH")
-    b = PrivateBroker(tmp_path / "broker").start()
+def broker(tmp_path: Path, request: pytest.FixtureRequest) -> Iterator[PrivateBroker]:
+    """A private broker on a free loopback port, stopped after the test."""
+    if mosquitto_path() is not None:
+        b = PrivateBroker(tmp_path / "broker").start()
+        try:
+            yield b
+        finally:
+            b.kill()
+        return
+    if request.node.get_closest_marker("persistence") is not None:
+        pytest.skip("needs Mosquitto's own persistence, restarts or TLS: mosquitto is not on "
+                    "PATH, and the embedded broker keeps no sessions")
+    if not embedded_available():
+        pytest.skip("no mosquitto on PATH and amqtt (the 'broker' extra) is not installed")
+    embedded = EmbeddedBroker(tmp_path / "broker").start()
+    support.PROTOCOL = "3.1.1"
     try:
-        yield b
+        yield embedded  # type: ignore[misc]  # same port/stop face as PrivateBroker
     finally:
-        b.kill()
+        support.PROTOCOL = "5"
+        embedded.stop()
 
 
 @pytest.fixture

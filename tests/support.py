@@ -30,6 +30,8 @@ from trimtab.statestore import StateStore
 from trimtab.wiring import make_engine
 
 BIN = Path(sys.executable).parent
+PROTOCOL = "5"
+"""MQTT version test configs use: 5 on Mosquitto, 3.1.1 on the embedded broker (conftest)."""
 
 
 def write_config(directory: Path, port: int, *, client_id: str = "trimtab-test",
@@ -40,6 +42,7 @@ def write_config(directory: Path, port: int, *, client_id: str = "trimtab-test",
 [broker]
 host = "127.0.0.1"
 port = {port}
+protocol = "{PROTOCOL}"
 client_id = "{client_id}"
 session_expiry = 3600
 keepalive = 10

@@ -63,6 +63,7 @@ class TestEndToEnd:
         assert model_states(recovered_engine(cfg)) == model_states(engine)
         assert engine.counts["reference_applied"] > 50
 
+    @pytest.mark.persistence
     def test_persistent_session_delivers_what_was_missed(self, tmp_path: Path,
                                                           broker: PrivateBroker) -> None:
         """Messages published while the daemon is stopped are processed after it starts, once."""
@@ -91,6 +92,7 @@ class TestEndToEnd:
 
 
 class TestCrashAndBrokerLoss:
+    @pytest.mark.persistence
     def test_kill9_at_random_points_gives_the_uninterrupted_state(
             self, tmp_path: Path, broker: PrivateBroker) -> None:
         """kill -9 at 5 random points of a QoS 1 stream: final state equals an uninterrupted run."""
@@ -121,6 +123,7 @@ class TestCrashAndBrokerLoss:
         applied = {s: recovered.model(s).updates for s in ("s1", "s2")}  # type: ignore[union-attr]
         assert applied == {s: engine.model(s).updates for s in ("s1", "s2")}  # type: ignore[union-attr]
 
+    @pytest.mark.persistence
     def test_broker_restart_mid_stream(self, tmp_path: Path, broker: PrivateBroker) -> None:
         """Broker restarted mid-stream: the daemon reconnects and ends in the same state."""
         cfg_path, daemon, watcher = _setup(tmp_path, broker)

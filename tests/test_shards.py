@@ -234,6 +234,7 @@ def caught_up_with(events: list[Reading | Reference], sensors: set[str]) -> Any:
     return lambda w: all(sensor_t(w, s) >= t for s, t in last.items())
 
 
+@pytest.mark.persistence
 class TestMoveSensor:
     @pytest.mark.parametrize("mode", ["hash", "per_sensor"])
     def test_move_while_references_flow(self, tmp_path: Path, broker: PrivateBroker,

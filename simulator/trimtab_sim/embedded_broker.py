@@ -52,11 +52,11 @@ class EmbeddedBroker:
         self.proc: subprocess.Popen[bytes] | None = None
 
     def start(self, timeout: float = 15.0) -> EmbeddedBroker:
-        log = open(self.workdir / "embedded-broker.log", "ab")  # noqa: SIM115 - owned by child
-        self.proc = subprocess.Popen(
-            [sys.executable, "-m", "trimtab_sim.embedded_broker", str(self.port)],
-            stdout=log, stderr=log,
-        )
+        with open(self.workdir / "embedded-broker.log", "ab") as log:
+            self.proc = subprocess.Popen(
+                [sys.executable, "-m", "trimtab_sim.embedded_broker", str(self.port)],
+                stdout=log, stderr=log,
+            )
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             if self.proc.poll() is not None:
