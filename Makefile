@@ -4,12 +4,12 @@ VENV ?= .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: setup test demo lint check clean
+.PHONY: setup test demo soak lint check clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
-	$(BIN)/python -m pip install --quiet -e '.[test,plots,metrics,broker]'
+	$(BIN)/python -m pip install --quiet -e '.[test,plots,metrics,broker,bench]'
 	touch $(STAMP)
 
 setup: $(STAMP)
@@ -19,6 +19,12 @@ test: $(STAMP)
 	$(BIN)/ruff check daemon simulator tests
 	$(BIN)/mypy
 	$(BIN)/python -m pytest
+
+## make soak: set up, then run the reliability scenarios at full scale and print their figures
+## (20 kills, 5 broker restarts, 100,000 fuzz inputs per decoder, 100,000 malformed messages,
+## 60 s of overload; about half an hour). CI runs the same tests at a small scale.
+soak: $(STAMP)
+	$(BIN)/python -m trimtab_sim.soak --scale full
 
 ## make demo: set up and run the whole loop on the embedded default scenario.
 demo: $(STAMP)

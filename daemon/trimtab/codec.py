@@ -15,7 +15,7 @@ import re
 from collections.abc import Mapping
 from dataclasses import dataclass
 from datetime import datetime
-from typing import Protocol
+from typing import Any, Protocol
 
 from trimtab.errors import DecodeError
 from trimtab.messages import Corrected, Reading, Reference
@@ -32,6 +32,7 @@ __all__ = [
     "SenmlCodec",
     "SenmlRecord",
     "corrected_from_obj",
+    "corrected_json",
     "corrected_to_dict",
     "need",
     "parse_json",
@@ -99,19 +100,29 @@ def _reject_constant(name: str) -> object:
 
 
 def _unique_keys(pairs: list[tuple[str, object]]) -> dict[str, object]:
-    obj: dict[str, object] = {}
-    for key, value in pairs:
-        if key in obj:
-            raise DecodeError("duplicate_field", f"field {key!r} appears more than once")
-        obj[key] = value
+    obj = dict(pairs)
+    if len(obj) != len(pairs):  # a key came twice: name the first repeated one
+        seen: set[str] = set()
+        for key, _ in pairs:
+            if key in seen:
+                raise DecodeError("duplicate_field", f"field {key!r} appears more than once")
+            seen.add(key)
     return obj
+
+
+# Built once: json.loads() with hooks would build a new decoder for every payload.
+_DECODER = json.JSONDecoder(parse_constant=_reject_constant, object_pairs_hook=_unique_keys)
+_ENCODER = json.JSONEncoder(allow_nan=False)
 
 
 def parse_json(payload: bytes | bytearray | str, max_bytes: int) -> object:
     """Parse one JSON text strictly; raise ``DecodeError`` (oversize, bad_json, ...) if not."""
     if isinstance(payload, bytearray):
         payload = bytes(payload)
-    size = len(payload) if isinstance(payload, bytes) else len(payload.encode("utf-8", "replace"))
+    if isinstance(payload, bytes) or 4 * len(payload) <= max_bytes:
+        size = len(payload)  # a str of n characters is at most 4n bytes of UTF-8
+    else:
+        size = len(payload.encode("utf-8", "replace"))
     if size > max_bytes:
         raise DecodeError("oversize", f"payload is {size} bytes, more than the {max_bytes} allowed")
     if isinstance(payload, bytes):
@@ -120,7 +131,7 @@ def parse_json(payload: bytes | bytearray | str, max_bytes: int) -> object:
         except UnicodeDecodeError as exc:
             raise DecodeError("bad_json", f"payload is not UTF-8 (byte {exc.start})") from exc
     try:
-        return json.loads(payload, parse_constant=_reject_constant, object_pairs_hook=_unique_keys)
+        return _DECODER.decode(payload)
     except RecursionError as exc:
         raise DecodeError("bad_json", "payload is nested too deeply") from exc
     except ValueError as exc:  # JSONDecodeError, and integers with too many digits
@@ -137,6 +148,8 @@ def need(obj: Mapping[str, object], key: str, where: str = "") -> object:
 
 def to_number(x: object, where: str) -> float:
     """A finite float from a JSON number (not a boolean); ``where`` names it in errors."""
+    if type(x) is float and x - x == 0.0:  # the common case: a finite float, as it is
+        return x
     if isinstance(x, bool) or not isinstance(x, int | float):
         raise DecodeError("wrong_type", f"{where} must be a number, got {_kind(x)}")
     try:
@@ -150,6 +163,8 @@ def to_number(x: object, where: str) -> float:
 
 def to_value(x: object, where: str) -> float:
     """A measured value: a finite number with magnitude at most ``MAX_ABS``."""
+    if type(x) is float and -MAX_ABS <= x <= MAX_ABS:  # finite and in range, as it is
+        return x
     value = to_number(x, where)
     if abs(value) > MAX_ABS:
         raise DecodeError("out_of_range", f"{where} = {value!r} exceeds ±{MAX_ABS:g}")
@@ -225,6 +240,39 @@ def corrected_to_dict(c: Corrected) -> dict[str, object]:
     }  # fmt: skip
 
 
+_JSON_STRINGS: dict[str, str] = {}
+_JSON_FLAGS: dict[tuple[str, ...], str] = {}
+_MEMO_LIMIT = 4096
+
+
+def _memo_json(memo: dict[Any, str], key: Any, value: object) -> str:
+    text = memo.get(key)
+    if text is None:
+        text = _ENCODER.encode(value)
+        if len(memo) < _MEMO_LIMIT:
+            memo[key] = text
+    return text
+
+
+def corrected_json(c: Corrected) -> str:
+    """``json.dumps(corrected_to_dict(c), allow_nan=False)``, the same text, made faster.
+
+    json writes a float as ``float.__repr__`` and an int as ``int.__repr__``; for exact
+    floats and ints this formats them the same way and caches the encoded sensor id and
+    flags. Anything else (a non-finite number, a subclass) takes the ``json`` path.
+    """
+    t, value, raw, band, updates = c.t, c.value, c.raw, c.band, c.updates
+    if (type(t) is float and type(value) is float and type(raw) is float
+            and type(band) is float and type(updates) is int
+            and t - t == 0.0 and value - value == 0.0 and raw - raw == 0.0
+            and band - band == 0.0 and type(c.flags) is tuple):
+        sensor = _memo_json(_JSON_STRINGS, c.sensor, c.sensor)
+        flags = _memo_json(_JSON_FLAGS, c.flags, list(c.flags))
+        return (f'{{"t": {t!r}, "sensor": {sensor}, "value": {value!r}, "raw": {raw!r}, '
+                f'"band": {band!r}, "flags": {flags}, "updates": {updates!r}}}')
+    return _ENCODER.encode(corrected_to_dict(c))
+
+
 def corrected_from_obj(x: object) -> Corrected:
     """A ``Corrected`` from its parsed flat form, with every field checked."""
     obj = _as_object(x, "corrected value")
@@ -283,9 +331,10 @@ class JsonCodec:
 
     A reading needs the time and the raw value, and carries those covariate fields it has
     (``covariates`` maps the model's input name to the payload field; the engine refuses a
-    reading that lacks one its sensor's model needs); a reference needs the time and the value, and may
-    carry a window (null means none). Other fields are ignored. Corrected values are written
-    with the fixed names of ``CORRECTED_FIELDS`` and repr floats, so they decode bit for bit.
+    reading that lacks one its sensor's model needs); a reference needs the time and the
+    value, and may carry a window (null means none). Other fields are ignored. Corrected
+    values are written with the fixed names of ``CORRECTED_FIELDS`` and repr floats, so they
+    decode bit for bit.
     """
 
     def __init__(
@@ -353,7 +402,7 @@ class JsonCodec:
 
     def encode_corrected(self, c: Corrected) -> bytes:
         """The flat JSON object of a corrected value, UTF-8 encoded."""
-        return json.dumps(corrected_to_dict(c), allow_nan=False).encode("utf-8")
+        return corrected_json(c).encode("utf-8")
 
     def decode_corrected(self, payload: bytes | bytearray) -> Corrected:
         """The corrected value written by ``encode_corrected``."""

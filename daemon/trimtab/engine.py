@@ -502,7 +502,7 @@ class Engine:
             for name, d in state["sensors"].items():
                 self._load_sensor(name, d)
             self.counts = Counter({str(k): int(v) for k, v in state["counts"].items()})
-        except (KeyError, TypeError, ValueError, AttributeError) as exc:
+        except (KeyError, TypeError, ValueError, AttributeError, OverflowError) as exc:
             raise StateError(f"engine state is malformed: {exc!r}") from exc
 
     def export_sensor(self, sensor: str) -> dict[str, Any]:
@@ -526,7 +526,7 @@ class Engine:
                 raise StateError(f"sensor {sensor!r} is not configured on this daemon")
             self._sensors.pop(sensor, None)
             self._load_sensor(sensor, exported["state"])
-        except (KeyError, TypeError, ValueError, AttributeError) as exc:
+        except (KeyError, TypeError, ValueError, AttributeError, OverflowError) as exc:
             raise StateError(f"sensor-state export is malformed: {exc!r}") from exc
         return sensor
 

@@ -8,6 +8,8 @@ All times are event times.
 
 from __future__ import annotations
 
+import base64
+import binascii
 import itertools
 import math
 import sys
@@ -15,6 +17,8 @@ from array import array
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Literal
+
+import numpy as np
 
 from trimtab.errors import StateError
 from trimtab.messages import Reference
@@ -91,18 +95,25 @@ class ReadingBuffer:
         if len(values) != self._width - 1:
             raise ValueError(f"expected {self._width - 1} values {self.inputs}, got {len(values)}")
         row = array("d", [t, *values])
-        if not all(math.isfinite(x) for x in row):
+        if not all(map(math.isfinite, row)):
             raise ValueError(f"reading at t={t!r} has a non-finite time or value: {list(row)}")
-        newest = self.newest
+        data, w = self._data, self._width
+        newest = data[-w] if len(data) > self._head * w else None
         if newest is None or t >= newest:
-            self._data.extend(row)
+            data.extend(row)
             newest = t
         elif t < newest - self.span:
             return  # already outside the span: nothing to pair it with later
         else:
-            at = self._bisect(t, right=True) * self._width
-            self._data[at:at] = row
-        self._head = max(self._head, self._bisect(newest - self.span, right=False))
+            at = self._bisect(t, right=True) * w
+            data[at:at] = row
+        # Evict rows older than the span from the front: the rows are in time order, so
+        # stepping the head over them finds what a bisection would, in amortised O(1).
+        cutoff = newest - self.span
+        head, end = self._head * w, len(data)
+        while head < end and data[head] < cutoff:
+            head += w
+        self._head = head // w
         excess = len(self) - self.capacity
         if excess > 0:
             self._head += excess
@@ -148,17 +159,27 @@ class ReadingBuffer:
         row = self._data[best * w : (best + 1) * w]
         return list(row[1:]), row[0]
 
-    def to_dict(self) -> dict[str, object]:
+    def to_dict(self, *, packed: bool = False) -> dict[str, object]:
         """Plain JSON-able state; ``data`` is the rows ``[t, x_1, ..., x_k]`` flattened.
 
-        Floats survive JSON bit for bit, since ``json`` writes them as Python's repr.
+        Floats survive JSON bit for bit, since ``json`` writes them as Python's repr. With
+        ``packed`` the rows are instead one Base64 string (RFC 4648) of IEEE 754 binary64
+        numbers, little-endian: the same bits, far quicker to write and to read back in a
+        checkpoint of many sensors. :meth:`from_dict` reads both forms.
         """
+        live = self._data[self._head * self._width :]
+        if not packed:
+            data: object = live.tolist()
+        else:
+            if sys.byteorder != "little":
+                live.byteswap()
+            data = base64.b64encode(live.tobytes()).decode("ascii")
         return {
             "inputs": list(self.inputs),
             "span": self.span,
             "capacity": self.capacity,
             "dropped": self.dropped,
-            "data": self._data[self._head * self._width :].tolist(),
+            "data": data,
         }
 
     @classmethod
@@ -167,14 +188,14 @@ class ReadingBuffer:
         try:
             inputs, span, capacity = d["inputs"], d["span"], d["capacity"]
             dropped, rows = d["dropped"], d["data"]
-            if not isinstance(inputs, list) or not isinstance(rows, list):
-                raise TypeError("inputs and data must be lists")
+            if not isinstance(inputs, list) or not isinstance(rows, list | str):
+                raise TypeError("inputs and data must be lists (data may be a Base64 string)")
             if not isinstance(capacity, int) or not isinstance(span, int | float):
                 raise TypeError("capacity must be an integer and span a number")
             buf = cls([str(n) for n in inputs], float(span), capacity)
             if isinstance(dropped, bool) or not isinstance(dropped, int) or dropped < 0:
                 raise ValueError(f"dropped must be a count, got {dropped!r}")
-            data = array("d", rows)
+            data = array("d", rows) if isinstance(rows, list) else _unpack(rows)
         except (KeyError, TypeError, ValueError) as exc:
             raise StateError(f"reading buffer state is malformed: {exc}") from exc
         w = buf._width
@@ -182,14 +203,45 @@ class ReadingBuffer:
         if len(data) % w or len(times) > capacity:
             raise StateError(f"reading buffer state holds {len(data)} numbers: not rows of {w}, "
                              f"or more than {capacity} rows")  # fmt: skip
-        if not all(math.isfinite(x) for x in data):
+        if not _all_finite(data):
             raise StateError("reading buffer state holds a non-finite number")
-        if any(a > b for a, b in itertools.pairwise(times)):
+        if not _ordered(times):
             raise StateError("reading buffer state is not in time order")
         if len(times) and times[0] < times[-1] - buf.span:
             raise StateError("reading buffer state holds rows older than its span")
         buf._data, buf.dropped = data, dropped
         return buf
+
+
+def _unpack(text: str) -> array[float]:
+    """The numbers of a packed ``data`` string; ValueError if it is not whole binary64s."""
+    try:
+        raw = binascii.a2b_base64(text.encode("ascii"), strict_mode=True)
+    except (binascii.Error, UnicodeEncodeError) as exc:
+        raise ValueError(f"data is not Base64: {exc}") from None
+    if len(raw) % 8:
+        raise ValueError(f"data holds {len(raw)} bytes, not whole 8-byte numbers")
+    data = array("d")
+    data.frombytes(raw)
+    if sys.byteorder != "little":
+        data.byteswap()
+    return data[:]  # an exact-size copy: frombytes leaves room to grow
+
+
+_VECTOR_FROM = 64  # numbers from which numpy's checks beat a Python loop
+
+
+def _all_finite(data: array[float]) -> bool:
+    if len(data) < _VECTOR_FROM:
+        return all(map(math.isfinite, data))
+    return bool(np.isfinite(np.frombuffer(data, dtype=np.float64)).all())
+
+
+def _ordered(times: array[float]) -> bool:
+    if len(times) < _VECTOR_FROM:
+        return not any(a > b for a, b in itertools.pairwise(times))
+    t = np.frombuffer(times, dtype=np.float64)
+    return bool((t[1:] >= t[:-1]).all())
 
 
 @dataclass(frozen=True, slots=True)

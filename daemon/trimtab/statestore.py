@@ -32,7 +32,7 @@ from __future__ import annotations
 import fcntl
 import os
 import re
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -208,6 +208,10 @@ class StateStore:
     def append(self, record: Mapping[str, Any]) -> None:
         """Journal one event; it survives a kill -9 once this returns, power loss after sync."""
         self._active("append").append(record)
+
+    def append_many(self, records: Iterable[Mapping[str, Any]]) -> None:
+        """Journal several events in order with one write (see ``Journal.append_many``)."""
+        self._active("append").append_many(records)
 
     def sync(self) -> None:
         """Make every appended event durable (fsync mode) before they are acknowledged."""

@@ -22,8 +22,9 @@ from typing import TypeVar
 
 from trimtab import codec
 from trimtab.codec import (
+    MAX_ABS,
     corrected_from_obj,
-    corrected_to_dict,
+    corrected_json,
     need,
     parse_json,
     to_time,
@@ -75,6 +76,8 @@ def _sensor(obj: dict[str, object]) -> str:
 
 
 def _only(obj: dict[str, object], allowed: frozenset[str]) -> None:
+    if obj.keys() <= allowed:
+        return
     extra = sorted(set(obj) - allowed)
     if extra:
         raise DecodeError("unknown_field", f"fields {extra} are not part of a stream event")
@@ -100,7 +103,11 @@ def decode_event(line: str) -> Reading | Reference:
         raise DecodeError("wrong_type", "field 'reading' must be an object of input values")
     if "raw" not in reading:
         raise DecodeError("missing_field", "field 'reading.raw' is missing")
-    inputs = {name: to_value(v, f"field 'reading.{name[:64]}'") for name, v in reading.items()}
+    if all(type(v) is float and -MAX_ABS <= v <= MAX_ABS for v in reading.values()):
+        inputs = reading  # every value is what to_value would return: take the parsed object
+    else:
+        inputs = {name: to_value(v, f"field 'reading.{name[:64]}'")
+                  for name, v in reading.items()}
     truth = obj.get("truth")
     return Reading(
         t=t,
@@ -133,7 +140,7 @@ def encode_event(e: Reading | Reference) -> str:
 
 def encode_corrected_line(c: Corrected) -> str:
     """One line (no newline) for a corrected value, in the daemon's published form."""
-    return json.dumps(corrected_to_dict(c), allow_nan=False)
+    return corrected_json(c)
 
 
 def decode_corrected_line(line: str) -> Corrected:

@@ -76,6 +76,10 @@ def read_password(env: str | None, file: str | Path | None) -> str | None:
     return None
 
 
+def _write_from_network_thread(client: mqtt.Client, userdata: Any, sock: Any) -> None:
+    """paho's "register for writing" hook: nothing to do, our loop selects for writing."""
+
+
 class Backoff:
     """Capped exponential backoff with full jitter; reset after a successful connect."""
 
@@ -157,6 +161,13 @@ class Transport:
         client.on_disconnect = self._on_disconnect
         client.on_message = self._on_message
         client.on_subscribe = self._on_subscribe
+        # Only the network thread touches the socket. Without a write callback, paho writes
+        # a publish or an acknowledgement made on the service's thread to the socket from
+        # that thread, while the network thread may be reading it: harmless for plain TCP,
+        # but a TLS connection's state is shared by both directions and breaks ("unspecified
+        # error" disconnects, seen once the service published in bursts). With one set,
+        # paho queues the packet and wakes the loop, which writes it.
+        client.on_socket_register_write = _write_from_network_thread
         return client
 
     def _connect_properties(self) -> Properties | None:

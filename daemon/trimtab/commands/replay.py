@@ -42,21 +42,32 @@ def replay(engine: Engine, stream: Path, out: TextIO, *, progress: bool = False
 
     events = corrected = 0
     started = last = time.monotonic()
+    on_reading, on_reference = engine.on_reading, engine.on_reference
+    lines: list[str] = []  # written in blocks: one write call per line costs as much as a line
     for event in read_events(stream, on_error=on_error):
         events += 1
         if isinstance(event, Reading):
-            for c in engine.process(event):
-                out.write(encode_corrected_line(c))
-                out.write("\n")
+            c = on_reading(event)
+            if c is not None:
+                lines.append(encode_corrected_line(c))
                 corrected += 1
         else:
-            engine.process(event)
-        if progress and events % 4096 == 0:
+            on_reference(event)
+        if events % 4096 == 0:
+            if lines:
+                lines.append("")
+                out.write("\n".join(lines))
+                lines.clear()
+            if not progress:
+                continue
             now = time.monotonic()
             if now - last >= 0.5:
                 last = now
                 rate = events / max(now - started, 1e-9)
                 print(f"\rreplay: {events:,} events, {rate:,.0f}/s", end="", file=sys.stderr)
+    if lines:
+        lines.append("")
+        out.write("\n".join(lines))
     if progress:
         print("\r", end="", file=sys.stderr)
     return events, corrected, rejected
