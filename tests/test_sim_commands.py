@@ -100,7 +100,7 @@ class TestMake:
     def test_missing_scenario(self, tmp_path: Path) -> None:
         """A missing scenario file exits 2 with a message."""
         r = sim("make", tmp_path / "none.toml", "-o", tmp_path / "x.jsonl")
-        assert r.returncode == 2 and "cannot read scenario file" in r.stderr
+        assert r.returncode == 2 and "scenario file not found" in r.stderr
 
 
 class TestScore:

@@ -347,7 +347,7 @@ class TestCandidates:
         ("[grid]\nhuber_delta = [\"off\"]\n", "grid.huber_delta[0]: expected a finite number"),
         ("[grid]\nnormalised = [1]\n", "grid.normalised[0]: expected true or false"),
         ("[other]\nalpha = [0.1]\n", "other: unknown table"),
-        ("alpha = [\n", "not a TOML file"),
+        ("alpha = [\n", "TOML syntax error"),
     ])
     def test_bad_grid_file_names_file_and_key(self, tmp_path: Path, text: str,
                                               message: str) -> None:

@@ -13,8 +13,6 @@ problem: ``"<file>: <dotted.field.path>: <message>"``.
 from __future__ import annotations
 
 import os
-import re
-import tomllib
 from collections.abc import Mapping
 from typing import Annotated, Any, Literal
 
@@ -42,6 +40,7 @@ from trimtab.sensorconfig import (
     key,
     refuse,
 )
+from trimtab.tomlfile import read_toml
 from trimtab.topics import TopicTemplate
 
 __all__ = [
@@ -517,23 +516,7 @@ def parse_config(data: Mapping[str, Any], source: str = "<config>") -> Config:
 
 def load_config(path: str | os.PathLike[str]) -> Config:
     """Read and validate a TOML config file; a missing or unreadable file is an error."""
-    source = os.fspath(path)
-    try:
-        with open(source, "rb") as fh:
-            data = tomllib.load(fh)
-    except FileNotFoundError:
-        raise ConfigError(f"{source}: config file not found") from None
-    except OSError as exc:
-        raise ConfigError(f"{source}: cannot read the config file: {exc.strerror}") from exc
-    except UnicodeDecodeError as exc:
-        raise ConfigError(f"{source}: not UTF-8 text (byte {exc.start})") from None
-    except tomllib.TOMLDecodeError as exc:
-        text = str(exc)
-        m = re.search(r"\(at line (\d+), column (\d+)\)", text)
-        where = f"line {m.group(1)}, column {m.group(2)}" if m else "end of file"
-        reason = re.sub(r"\s*\(at (line \d+, column \d+|end of document)\)", "", text)
-        raise ConfigError(f"{source}: {where}: TOML syntax error: {reason}") from None
-    return parse_config(data, source)
+    return parse_config(read_toml(path, "config file"), os.fspath(path))
 
 
 def file_problems(cfg: Config, source: str = "<config>") -> list[str]:

@@ -27,7 +27,6 @@ import copy
 import itertools
 import math
 import os
-import tomllib
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -36,6 +35,7 @@ import numpy as np
 
 from trimtab.config import Config, parse_config
 from trimtab.errors import ConfigError, DataError
+from trimtab.tomlfile import read_toml
 
 __all__ = [
     "MAX_CANDIDATES",
@@ -109,15 +109,7 @@ def _check_value(key: str, v: object, where: str) -> Value:
 def load_grid(path: str | os.PathLike[str]) -> dict[str, list[Value]]:
     """Read a grid file; DataError names the file, the key and the item on any problem."""
     source = os.fspath(path)
-    try:
-        with open(source, "rb") as fh:
-            data = tomllib.load(fh)
-    except FileNotFoundError:
-        raise DataError(f"{source}: grid file not found") from None
-    except OSError as exc:
-        raise DataError(f"{source}: cannot read the grid file: {exc.strerror}") from exc
-    except (UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
-        raise DataError(f"{source}: not a TOML file: {exc}") from None
+    data = read_toml(path, "grid file", DataError)
     extra = sorted(set(data) - {"grid"})
     if extra:
         raise DataError(f"{source}: {extra[0]}: unknown table; a grid file has one [grid] table")

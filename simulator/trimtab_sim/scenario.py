@@ -8,7 +8,6 @@ scenario's ``start``; intervals, windows and lags in seconds.
 
 from __future__ import annotations
 
-import tomllib
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Annotated, Any, Literal
@@ -16,6 +15,7 @@ from typing import Annotated, Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from trimtab.errors import ConfigError, DecodeError
+from trimtab.tomlfile import read_toml
 from trimtab.topics import validate_sensor_id
 
 NonNeg = Annotated[float, Field(ge=0.0)]
@@ -336,13 +336,5 @@ def parse_scenario(data: dict[str, Any], source: str = "scenario") -> Scenario:
 
 def load_scenario(path: str | Path) -> Scenario:
     """Load and validate a scenario TOML file; a missing or unreadable file is an error."""
-    p = Path(path)
-    try:
-        raw = p.read_bytes()
-    except OSError as exc:
-        raise ConfigError(f"{p}: cannot read scenario file: {exc.strerror or exc}") from exc
-    try:
-        data = tomllib.loads(raw.decode("utf-8"))
-    except (UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
-        raise ConfigError(f"{p}: not valid TOML: {exc}") from exc
-    return parse_scenario(data, str(p))
+    data = read_toml(path, "scenario file")
+    return parse_scenario(data, str(path))
