@@ -261,7 +261,7 @@ class TestScenario:
 
     def test_missing_file(self, tmp_path: Path) -> None:
         """A missing scenario file is an error, never an empty scenario."""
-        with pytest.raises(ConfigError, match="nope.toml: scenario file not found"):
+        with pytest.raises(ConfigError, match=r"nope\.toml: scenario file not found"):
             load_scenario(tmp_path / "nope.toml")
 
     def test_bad_toml(self, tmp_path: Path) -> None:

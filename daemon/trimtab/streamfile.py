@@ -21,7 +21,8 @@ from pathlib import Path
 from typing import TypeVar
 
 from trimtab import codec
-from trimtab.codec import (
+from trimtab.errors import DataError, DecodeError
+from trimtab.jsonfields import (
     MAX_ABS,
     corrected_from_obj,
     corrected_json,
@@ -31,7 +32,6 @@ from trimtab.codec import (
     to_value,
     to_window,
 )
-from trimtab.errors import DataError, DecodeError
 from trimtab.messages import Corrected, Reading, Reference
 from trimtab.topics import validate_sensor_id
 
