@@ -5,7 +5,9 @@ them in practice (a broken reference instrument, a sensor swapped without notice
 
 * **gate** — a reference whose prequential residual exceeds ``gate_k`` robust spreads is held
   as a *suspect* and not applied. ``gate_run`` suspects in a row on the same side are a real
-  level shift: they are all applied, in order, and the error baseline restarts.
+  level shift: they are all applied, in order, and the error baseline restarts. A run whose
+  reference values are all one repeated number is a *stuck* instrument (a reference frozen
+  at zero or at its last value), not a shift: it stays gated until a value differs.
 * **snapshot / rollback** — every ``snapshot_every`` applied references the model is copied as
   the last good one, with the recent mean squared error at that time. When the recent error
   (an exponentially weighted mean of squared prequential residuals) exceeds
@@ -68,6 +70,10 @@ class Guard:
     def hold(self, phi: list[float], y: float) -> None:
         """Keep a suspect reference until the run decides (bounded by ``gate_run``)."""
         self.suspects.append((phi, y))
+
+    def flat_run(self, y: float) -> bool:
+        """Whether the held suspects and ``y`` repeat one value exactly: stuck, not shifted."""
+        return bool(self.suspects) and all(held_y == y for _, held_y in self.suspects)
 
     def take_suspects(self) -> list[tuple[list[float], float]]:
         """Hand over the held suspects (oldest first) and end the run."""

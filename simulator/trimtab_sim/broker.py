@@ -7,6 +7,7 @@ out, keeps its persistence file in its own directory and is stopped (or killed) 
 from __future__ import annotations
 
 import contextlib
+import os
 import shutil
 import signal
 import socket
@@ -72,6 +73,10 @@ class PrivateBroker:
             BROKER_LIMITS,
             self.extra_config,
         ]
+        if os.geteuid() == 0:
+            # Started as root, Mosquitto drops to the user 'mosquitto', which cannot write this
+            # directory: no log and, worse, no persistence file, so a restart loses sessions.
+            lines.append("user root")
         self.conf_path.write_text("\n".join(lines) + "\n")
 
     def start(self, timeout: float = 10.0) -> PrivateBroker:
