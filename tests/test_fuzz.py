@@ -357,8 +357,6 @@ class TestJournalAndCheckpoint:
 
         run("journal", st.one_of(inputs([good]), checksummed), check)
 
-    @pytest.mark.xfail(strict=True, raises=OverflowError, reason="records.record_to_event "
-                       "does not catch OverflowError (float() of a 400-digit integer): reported")
     def test_journal_record_with_a_huge_integer(self) -> None:
         """A checksummed journal record whose time is a 400-digit integer is a StateError."""
         records, _ = scan_journal(_crc_line({"t": 10**400, "sensor": "s1", "reference": 1.0}),

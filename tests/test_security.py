@@ -368,11 +368,8 @@ class TestFileModes:
         assert any(p.name.startswith("checkpoint-") for p in files)
         assert any(p.name.startswith("journal-") for p in files)
         modes = {p.name: stat.S_IMODE(p.stat().st_mode) for p in files}
-        store = {n: m for n, m in modes.items() if n != "subscriptions.json"}
-        assert all(m == 0o600 for m in store.values()), modes
+        assert all(m == 0o600 for m in modes.values()), modes
 
-    @pytest.mark.xfail(strict=True, reason="shards.SubscriptionLedger.write uses write_text, so "
-                       "subscriptions.json gets the umask's mode (0644): reported, not fixed here")
     def test_subscription_ledger_is_owner_only(self, tmp_path: Path) -> None:
         """The subscription ledger beside the state is written 0600 like the rest."""
         from trimtab.shards import SubscriptionLedger

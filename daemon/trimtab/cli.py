@@ -12,6 +12,7 @@ import sys
 from collections.abc import Sequence
 
 from trimtab.errors import ConfigError, TrimtabError
+from trimtab.logs import configure_logging
 
 # sub-command name -> module under trimtab.commands providing add_arguments(p) and run(args) -> int
 COMMANDS: dict[str, tuple[str, str]] = {
@@ -55,6 +56,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``trimtab`` console script."""
     parser = build_parser()
     args = parser.parse_args(argv)
+    # Tool commands log warnings only, to stderr; `run` reconfigures from its config.
+    configure_logging("warning")
     try:
         code: int = args._run(args)
     except ConfigError as exc:

@@ -59,7 +59,7 @@ BIAS_WINDOW = 32
 
 _REFERENCE_OUTCOMES = {
     "applied": "applied", "level_shift": "applied",
-    "gated": "gated",
+    "gated": "gated", "stuck": "gated",
     "duplicate": "duplicate", "out_of_order": "duplicate",
     "non_finite": "rejected", "rolled_back": "rejected", "unknown_sensor": "rejected",
     "pending_overflow": "rejected",

@@ -12,13 +12,13 @@ from __future__ import annotations
 
 import json
 import os
-import tempfile
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
 from trimtab.errors import DataError
 from trimtab.model import RidgeModel
+from trimtab.privatefile import write_private
 from trimtab.ridge import FitReport
 
 FORMAT = "trimtab-model-state"
@@ -54,29 +54,10 @@ def save_model_file(
         text = json.dumps(model_document(model, sensor, fit), indent=2, allow_nan=False) + "\n"
     except ValueError as exc:
         raise DataError(f"{target}: the fit report holds a non-finite number ({exc})") from exc
-    directory = target.parent if str(target.parent) else Path(".")
     try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=directory)
+        write_private(target, text)
     except OSError as exc:
         raise DataError(f"{target}: cannot write there ({exc.strerror})") from exc
-    try:
-        os.fchmod(fd, 0o600)
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, target)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    try:
-        dfd = os.open(directory, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(dfd)
-    finally:
-        os.close(dfd)
 
 
 def load_model_file(path: str | os.PathLike[str]) -> tuple[RidgeModel, dict[str, Any]]:

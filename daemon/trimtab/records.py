@@ -32,6 +32,6 @@ def record_to_event(record: Mapping[str, Any]) -> Reading | Reference:
         window = record.get("window")
         return Reference(float(record["t"]), str(record["sensor"]), float(record["reference"]),
                          None if window is None else float(window))
-    except (KeyError, TypeError, ValueError, AttributeError) as exc:
+    except (KeyError, TypeError, ValueError, AttributeError, OverflowError) as exc:
         raise StateError(f"journal record has the wrong shape: {exc!r}: {dict(record)!r:.200}") \
             from exc

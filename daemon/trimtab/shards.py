@@ -38,6 +38,7 @@ from trimtab.errors import StateError
 from trimtab.journal import Durability, Journal, fsync_directory, read_journal
 from trimtab.logs import get_logger
 from trimtab.messages import Corrected, Reference
+from trimtab.privatefile import write_private
 from trimtab.records import record_to_event
 
 if TYPE_CHECKING:
@@ -102,10 +103,8 @@ class SubscriptionLedger:
         return list(data["filters"])
 
     def write(self, filters: Iterable[str]) -> None:
-        """Record the filters now subscribed (write a temporary file, then rename)."""
-        tmp = self.path.with_suffix(".tmp")
-        tmp.write_text(json.dumps({"filters": sorted(filters)}) + "\n", encoding="utf-8")
-        os.replace(tmp, self.path)
+        """Record the filters now subscribed (atomically, owner-only like all state files)."""
+        write_private(self.path, json.dumps({"filters": sorted(filters)}) + "\n")
 
     def stale(self, wanted: Iterable[str]) -> list[str]:
         """Filters subscribed by an earlier run that this run does not want, sorted."""

@@ -12,21 +12,27 @@ from pathlib import Path
 
 from trimtab.config import load_config
 from trimtab.errors import DataError
+from trimtab.privatefile import write_private
 from trimtab.records import record_to_event
 from trimtab.statestore import StateStore
 from trimtab.wiring import make_engine
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("action", choices=["show", "export", "import"],
-                   help="show: per-sensor summary; export: one sensor to a file; "
-                        "import: a sensor from a file")
-    p.add_argument("-c", "--config", required=True, type=Path, help="config file (TOML)")
-    p.add_argument("target", nargs="?", default=None,
-                   help="show/export: a sensor id (show: optional); import: the export file")
-    p.add_argument("-o", "--output", type=Path, default=None, help="export: file to write")
-    p.add_argument("--drop", action="store_true",
-                   help="export: also remove the sensor from this daemon's state")
+    sub = p.add_subparsers(dest="action", metavar="ACTION", required=True)
+    show = sub.add_parser("show", help="one JSON line per sensor: updates, RMSE, α, weights")
+    show.add_argument("target", nargs="?", default=None, metavar="SENSOR",
+                      help="only this sensor")
+    export = sub.add_parser("export", help="write one sensor's whole state to a file")
+    export.add_argument("target", metavar="SENSOR", help="the sensor to export")
+    export.add_argument("-o", "--output", type=Path, default=None,
+                        help="file to write (mode 0600; default: standard output)")
+    export.add_argument("--drop", action="store_true",
+                        help="also remove the sensor from this daemon's state")
+    imp = sub.add_parser("import", help="add an exported sensor to this daemon's state")
+    imp.add_argument("target", metavar="FILE", help="a file written by `state export`")
+    for q in (show, export, imp):
+        q.add_argument("-c", "--config", required=True, type=Path, help="config file (TOML)")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -50,16 +56,13 @@ def run(args: argparse.Namespace) -> int:
                     s = {**s, "theta": list(model.theta), "terms": list(model.spec.names())}
                 print(json.dumps({"sensor": sensor, **(s or {})}, allow_nan=False))
             return 0
-        if args.target is None:
-            raise DataError(f"state {args.action}: name a "
-                            f"{'sensor' if args.action == 'export' else 'file'}")
         if args.action == "export":
             exported = engine.export_sensor(args.target)
             text = json.dumps(exported, allow_nan=False)
             if args.output is None:
                 print(text)
             else:
-                args.output.write_text(text + "\n")
+                write_private(args.output, text + "\n")
             if args.drop:
                 engine.drop_sensor(args.target)
                 store.checkpoint(engine.state_dict())

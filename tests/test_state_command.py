@@ -1,0 +1,64 @@
+"""`trimtab state` on a real state directory: show, export (owner-only file) and import."""
+
+from __future__ import annotations
+
+import json
+import stat
+from pathlib import Path
+
+import pytest
+
+from trimtab.cli import main
+from trimtab.config import load_config
+from trimtab.statestore import StateStore
+from trimtab.wiring import make_engine
+
+from .support import model_states, recovered_engine, synthetic_stream, write_config
+
+
+def _daemon_state(directory: Path, n: int = 200) -> Path:
+    """A config whose state directory holds a checkpoint of an engine fed a short stream."""
+    path = write_config(directory, 1)
+    cfg = load_config(path)
+    engine = make_engine(cfg)
+    for e in synthetic_stream(n):
+        engine.process(e)
+    store = StateStore(Path(cfg.state.dir))
+    store.recover()
+    store.checkpoint(engine.state_dict())
+    store.close()
+    return path
+
+
+class TestStateCommand:
+    def test_show_prints_one_line_per_sensor(self, tmp_path: Path,
+                                             capsys: pytest.CaptureFixture[str]) -> None:
+        """`state show` prints each sensor's updates and weights as a JSON line."""
+        conf = _daemon_state(tmp_path / "a")
+        capsys.readouterr()
+        assert main(["state", "show", "-c", str(conf)]) == 0
+        lines = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
+        assert [x["sensor"] for x in lines] == ["s1", "s2"]
+        assert all(x["updates"] > 0 and len(x["theta"]) == 3 for x in lines)
+
+    def test_export_is_owner_only_and_import_moves_the_sensor(self, tmp_path: Path) -> None:
+        """An export file is 0600; importing it elsewhere reproduces the sensor's state exactly."""
+        src = _daemon_state(tmp_path / "a")
+        dst = _daemon_state(tmp_path / "b", n=10)
+        out = tmp_path / "s1.json"
+        assert main(["state", "export", "-c", str(src), "s1", "-o", str(out), "--drop"]) == 0
+        assert stat.S_IMODE(out.stat().st_mode) == 0o600
+        assert "s1" not in model_states(recovered_engine(load_config(src)))
+        assert main(["state", "import", "-c", str(dst), str(out)]) == 0
+        moved = model_states(recovered_engine(load_config(dst)))["s1"]
+        exported = json.loads(out.read_text())["state"]
+        assert moved == json.loads(json.dumps(exported))
+
+    def test_import_of_a_non_export_is_refused(self, tmp_path: Path) -> None:
+        """A file that is not a sensor-state export exits 2 and changes nothing."""
+        conf = _daemon_state(tmp_path / "a")
+        bad = tmp_path / "bad.json"
+        bad.write_text('{"hello": 1}')
+        before = model_states(recovered_engine(load_config(conf)))
+        assert main(["state", "import", "-c", str(conf), str(bad)]) == 2
+        assert model_states(recovered_engine(load_config(conf))) == before
