@@ -139,3 +139,32 @@ class TestPlayRecordCommands:
                 daemon.terminate()
                 daemon.wait(30)
         assert list(read_corrected(out)) == expected
+
+
+class TestTrajectories:
+    def test_trajectory_ends_at_the_replayed_model_and_is_drawn(self, tmp_path: Path) -> None:
+        """Weights traced per reference end at replay's final model; score --config draws them."""
+        from trimtab_sim.cli import main as sim_main
+        from trimtab_sim.trajectory import trace
+
+        scenario = load_scenario(ROOT / "config" / "scenarios" / "no2-school-roof.toml")
+        stream = tmp_path / "s.jsonl"
+        write_stream(scenario, stream, 2)
+        cut = [e for e in read_events(stream) if e.t < scenario.start.timestamp() + 3 * 86400.0]
+        write_events(stream, cut)
+        conf = _demo_config(tmp_path)
+        engine = make_engine(load_config(conf))
+        corrected = [c for e in cut for c in engine.process(e)]
+        traj = trace(load_config(conf), cut)
+        for sensor, tr in traj.items():
+            model = engine.model(sensor)
+            assert model is not None
+            assert dict(zip(tr.names, tr.weights[-1], strict=True)) == model.coefficients()
+        out = tmp_path / "corrected.jsonl"
+        from trimtab.streamfile import write_corrected
+
+        write_corrected(out, corrected)
+        assert sim_main(["score", str(stream), str(out), "-o", str(tmp_path / "rep"),
+                         "--config", str(conf)]) == 0
+        assert (tmp_path / "rep" / "no2-roof-01-weights.png").stat().st_size > 0
+        assert "no2-roof-01-weights.png" in (tmp_path / "rep" / "report.md").read_text()

@@ -2,8 +2,8 @@
 
 Figures need matplotlib (the ``plots`` extra), imported only when figures are drawn, with the
 non-interactive Agg backend. Without it the Markdown report is still written and says so.
-Coefficient trajectories are not drawn: they need the daemon's state, which a corrected
-stream does not carry.
+Coefficient trajectories (``trajectory.py``) are drawn when the daemon's config is given, by
+replaying the stream through the same engine.
 """
 
 from __future__ import annotations
@@ -19,6 +19,8 @@ from typing import Any
 import numpy as np
 
 from trimtab_sim.score import DAY, F64, SERIES, Joined, Metrics, Result, metrics
+from trimtab_sim.trajectory import Trajectory
+from trimtab_sim.trajectory import draw as draw_trajectories
 
 # US EPA performance targets for air sensors, QUOTED FROM MEMORY of EPA/600/R-20/280 (PM2.5,
 # 24-hour averages) and EPA/600/R-20/279 (O3, 1-hour averages), base testing. They apply to
@@ -311,11 +313,12 @@ def markdown(
         md += [plots_note, ""]
     for sensor, files in figures.items():
         md += [f"### {sensor}", ""] + [f"![{f}]({f})" for f in files] + [""]
-    md += [
-        "Coefficient trajectories are not drawn: they need the daemon's model state, which "
-        "a corrected stream does not carry.",
-        "",
-    ]
+    if not any(f.endswith("-weights.png") for fs in figures.values() for f in fs):
+        md += [
+            "Coefficient trajectories are drawn when the daemon's config is given "
+            "(`trimtab-sim score --config CONFIG`).",
+            "",
+        ]
     return "\n".join(md)
 
 
@@ -388,6 +391,7 @@ def write_report(
     targets: Sequence[TargetCheck],
     out_dir: Path,
     sources: dict[str, str],
+    trajectories: dict[str, Trajectory] | None = None,
 ) -> list[Path]:
     """Write report.md and the figures into ``out_dir``; returns the files written."""
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -395,6 +399,10 @@ def write_report(
     note = None
     if plots_available():
         figures = draw_figures(joined, out_dir)
+        if trajectories:
+            t0 = {j.sensor: float(j.t[0]) for j in joined}
+            for sensor, name in draw_trajectories(trajectories, out_dir, t0).items():
+                figures.setdefault(sensor, []).append(name)
     else:
         note = "matplotlib is not installed (the 'plots' extra), so no figures were drawn."
     path = out_dir / "report.md"

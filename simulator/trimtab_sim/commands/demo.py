@@ -31,7 +31,8 @@ def run(args: argparse.Namespace) -> int:
                    broker_kind=args.broker, days=args.days)
     scenario = args.scenario or embedded("demo-scenario.toml")
     code = sim_main(["score", str(res.out / "stream.jsonl"), str(res.out / "corrected.jsonl"),
-                     "-o", str(res.report), "--scenario", str(scenario), "--check"])
+                     "-o", str(res.report), "--scenario", str(scenario), "--check",
+                     "--config", str(res.out / "daemon.toml")])
     print(f"\ndemo: report {res.report / 'report.md'} (figures beside it)", file=sys.stderr)
     if not res.identical:
         print("demo: the broker's output differs from `trimtab replay`", file=sys.stderr)

@@ -41,6 +41,13 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
         help="whether a reference's t marks its window's end (default) or start",
     )
     p.add_argument(
+        "-c",
+        "--config",
+        metavar="CONFIG",
+        help="the daemon's config: replay the stream through its engine to draw each sensor's "
+        "coefficient trajectory, with rollbacks and level shifts marked",
+    )
+    p.add_argument(
         "--check",
         action="store_true",
         help="exit 1 when corrected RMSE does not beat raw by min_improvement",
@@ -92,6 +99,13 @@ def run(args: argparse.Namespace) -> int:
             "targets": checks,
         }
     )
+    trajectories = None
+    if args.config:
+        from trimtab.config import load_config
+        from trimtab_sim.trajectory import summary, trace
+
+        trajectories = trace(load_config(args.config), read_events(args.stream))
+        doc["trajectories"] = summary(trajectories)
     if args.json:
         print(json.dumps(doc, indent=2, ensure_ascii=False))
     else:
@@ -101,7 +115,9 @@ def run(args: argparse.Namespace) -> int:
         sources = {"stream": str(args.stream), "corrected": str(args.corrected)}
         if args.scenario:
             sources["scenario"] = str(args.scenario)
-        written = write_report(res, joined, checks, out, sources)
+        if args.config:
+            sources["config"] = str(args.config)
+        written = write_report(res, joined, checks, out, sources, trajectories)
         (out / "score.json").write_text(
             json.dumps(doc, indent=2, ensure_ascii=False) + "\n", encoding="utf-8"
         )
