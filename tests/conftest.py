@@ -13,6 +13,7 @@ from pathlib import Path
 
 import pytest
 
+from trimtab.logs import reset_logging
 from trimtab_sim.broker import PrivateBroker, mosquitto_path
 from trimtab_sim.embedded_broker import EmbeddedBroker
 from trimtab_sim.embedded_broker import available as embedded_available
@@ -42,6 +43,13 @@ def broker(tmp_path: Path, request: pytest.FixtureRequest) -> Iterator[PrivateBr
     finally:
         support.PROTOCOL = "5"
         embedded.stop()
+
+
+@pytest.fixture(autouse=True)
+def _fresh_logging() -> Iterator[None]:
+    """Each test starts and ends with logging as an unconfigured process has it."""
+    yield
+    reset_logging()
 
 
 @pytest.fixture

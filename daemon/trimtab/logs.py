@@ -125,6 +125,20 @@ def _resolve_format(fmt: str, stream: TextIO) -> Literal["json", "console"]:
     return "console" if tty else "json"
 
 
+class _CurrentStderr:
+    """Writes to whatever ``sys.stderr`` is at the time of writing (it may be replaced later,
+    as test runners and daemonisers do), never to a stream captured when logging was set up."""
+
+    def write(self, text: str) -> int:
+        return sys.stderr.write(text)
+
+    def flush(self) -> None:
+        sys.stderr.flush()
+
+    def isatty(self) -> bool:
+        return sys.stderr.isatty()
+
+
 def configure_logging(
     level: str = "info",
     fmt: Literal["auto", "json", "console"] = "auto",
@@ -138,7 +152,7 @@ def configure_logging(
     numeric = LEVELS.get(level.lower())
     if numeric is None:
         raise ConfigError(f"log level {level!r} is not one of {', '.join(LEVELS)}")
-    out = sys.stderr if stream is None else stream
+    out: TextIO = _CurrentStderr() if stream is None else stream  # type: ignore[assignment]
     chosen = _resolve_format(fmt, out)
 
     shared: list[Processor] = [
