@@ -30,8 +30,14 @@ def _show(s: str) -> str:
     return repr(s) if len(s) <= 80 else repr(s[:80]) + "..."
 
 
+_VALID_IDS: set[str] = set()
+_VALID_IDS_LIMIT = 65536  # ids already checked; bounded, so hostile ids cannot grow it
+
+
 def validate_sensor_id(s: str) -> str:
     """Return ``s`` if it is a valid sensor id; raise ``DecodeError("bad_sensor_id")`` if not."""
+    if type(s) is str and s in _VALID_IDS:
+        return s
     if not isinstance(s, str):
         raise DecodeError("bad_sensor_id", f"sensor id must be a string, got {type(s).__name__}")
     if _SENSOR_ID.fullmatch(s) is None:
@@ -42,6 +48,8 @@ def validate_sensor_id(s: str) -> str:
         )
     if ".." in s:
         raise DecodeError("bad_sensor_id", f"sensor id {_show(s)} must not contain '..'")
+    if len(_VALID_IDS) < _VALID_IDS_LIMIT:
+        _VALID_IDS.add(s)
     return s
 
 
