@@ -142,6 +142,22 @@ def model_states(engine: Engine) -> dict[str, Any]:
     return json.loads(json.dumps(state))
 
 
+def assert_matches_replay(cfg: Config, events: list[Reading | Reference]) -> tuple[Engine, Engine]:
+    """The daemon's recovered state equals an uninterrupted replay's, update counts included.
+
+    Returns (replayed, recovered) engines for further checks.
+    """
+    engine, _ = replay_engine(cfg, events)
+    recovered = recovered_engine(cfg)
+    assert model_states(recovered) == model_states(engine)
+    for sensor in engine.sensors():
+        a, b = recovered.model(sensor), engine.model(sensor)
+        assert (a is None) == (b is None)
+        if a is not None and b is not None:
+            assert a.updates == b.updates, sensor
+    return engine, recovered
+
+
 class Daemon:
     """``trimtab run`` as a real child process."""
 
@@ -241,5 +257,15 @@ def caught_up(events: list[Reading | Reference]) -> Callable[[Watcher], bool]:
     return pred
 
 
-__all__ = ["Daemon", "Watcher", "caught_up", "load_config", "model_states", "recovered_engine",
-           "replay_engine", "synthetic_stream", "write_config"]
+__all__ = [
+    "Daemon",
+    "Watcher",
+    "assert_matches_replay",
+    "caught_up",
+    "load_config",
+    "model_states",
+    "recovered_engine",
+    "replay_engine",
+    "synthetic_stream",
+    "write_config",
+]

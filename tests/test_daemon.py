@@ -22,6 +22,7 @@ from trimtab_sim.mqttio import Recorder, play
 from .support import (
     Daemon,
     Watcher,
+    assert_matches_replay,
     caught_up,
     model_states,
     recovered_engine,
@@ -85,9 +86,7 @@ class TestEndToEnd:
         finally:
             daemon.kill9()
             watcher.close()
-        engine, _ = replay_engine(cfg, events)
-        recovered = recovered_engine(cfg)
-        assert model_states(recovered) == model_states(engine)
+        _, recovered = assert_matches_replay(cfg, events)
         assert recovered.counts["reference_duplicate"] == 0
 
 
@@ -117,11 +116,7 @@ class TestCrashAndBrokerLoss:
         finally:
             daemon.kill9()
             watcher.close()
-        engine, _ = replay_engine(cfg, events)
-        recovered = recovered_engine(cfg)
-        assert model_states(recovered) == model_states(engine)
-        applied = {s: recovered.model(s).updates for s in ("s1", "s2")}  # type: ignore[union-attr]
-        assert applied == {s: engine.model(s).updates for s in ("s1", "s2")}  # type: ignore[union-attr]
+        assert_matches_replay(cfg, events)
 
     @pytest.mark.persistence
     def test_broker_restart_mid_stream(self, tmp_path: Path, broker: PrivateBroker) -> None:
@@ -145,8 +140,7 @@ class TestCrashAndBrokerLoss:
         finally:
             daemon.kill9()
             watcher.close()
-        engine, _ = replay_engine(cfg, events)
-        assert model_states(recovered_engine(cfg)) == model_states(engine)
+        assert_matches_replay(cfg, events)
 
 
 class TestHostileInput:
@@ -247,10 +241,5 @@ class TestSignals:
         finally:
             daemon.kill9()
             watcher.close()
-        engine, _ = replay_engine(cfg, events)
-        assert model_states(recovered_engine(cfg)) == model_states(engine)
+        assert_matches_replay(cfg, events)
 
-
-@pytest.fixture(autouse=True)
-def _tests_dir_is_package() -> None:
-    """Nothing to set up; tests/ imports its support module relatively."""
