@@ -23,6 +23,7 @@ import signal
 import subprocess
 import sys
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -180,22 +181,26 @@ def _tally(messages: list[Message], arrivals: list[Arrival]) -> tuple[dict[tuple
     return first, lost, dupes
 
 
-def run_throughput(kind: str, qos: int, *, port: int, workdir: Path, prefix: str,
-                   n: int, timeout: float) -> RunResult:
-    """Every message as fast as possible; rate from first publish to last value received."""
-    messages = workload(prefix, n)
+def _drive(kind: str, qos: int, *, port: int, workdir: Path, prefix: str,
+           messages: list[Message], wait: float,
+           send: Callable[[WireClient, list[bytes]], dict[tuple[str, float], float] | None]
+           ) -> tuple[list[Arrival], dict[tuple[str, float], float] | None, float]:
+    """Start the target and a sink, send the load with ``send``, collect every arrival.
+
+    ``wait`` is how long after the start the sink may still wait for values. Returns the
+    arrivals, what ``send`` returned (send times per reading key, or None) and the start time.
+    """
     packets = _packets(messages, qos)
     expected = sum(1 for m in messages if m.key is not None)
     target = Target(kind, port, qos, workdir, prefix).start()
     try:
-        start = time.perf_counter()
-        deadline = start + timeout
+        deadline = time.perf_counter() + wait
         sink = Sink("127.0.0.1", port, [(f"{prefix}/+/corrected", qos)], expected,
                     deadline=deadline).start()
         client = WireClient("127.0.0.1", port, f"{prefix}-load")
         try:
             start = time.perf_counter()
-            _blast(client, packets, qos, deadline)
+            sent = send(client, packets)
             arrivals = sink.join(max(deadline - time.perf_counter(), 0.1))
         finally:
             client.close()
@@ -204,6 +209,21 @@ def run_throughput(kind: str, qos: int, *, port: int, workdir: Path, prefix: str
         code = target.stop()
     if kind == "daemon" and code != 0:
         raise TrimtabError(f"bench: the daemon exited with {code}; see {target.log}")
+    return arrivals, sent, start
+
+
+def run_throughput(kind: str, qos: int, *, port: int, workdir: Path, prefix: str,
+                   n: int, timeout: float) -> RunResult:
+    """Every message as fast as possible; rate from first publish to last value received."""
+    messages = workload(prefix, n)
+    expected = sum(1 for m in messages if m.key is not None)
+    limit = time.perf_counter() + timeout
+
+    def send(client: WireClient, packets: list[bytes]) -> None:
+        _blast(client, packets, qos, limit)
+
+    arrivals, _, start = _drive(kind, qos, port=port, workdir=workdir, prefix=prefix,
+                                messages=messages, wait=timeout, send=send)
     _, lost, dupes = _tally(messages, arrivals)
     end = arrivals[-1].at if arrivals else time.perf_counter()
     return RunResult(kind, qos, "throughput", len(messages), expected, len(arrivals), lost,
@@ -214,25 +234,14 @@ def run_latency(kind: str, qos: int, *, port: int, workdir: Path, prefix: str,
                 rate: float, seconds: float, timeout: float) -> RunResult:
     """Messages at a fixed offered rate; per-reading latency publish → corrected received."""
     messages = workload(prefix, int(rate * seconds))
-    packets = _packets(messages, qos)
     expected = sum(1 for m in messages if m.key is not None)
-    target = Target(kind, port, qos, workdir, prefix).start()
-    try:
-        deadline = time.perf_counter() + seconds + timeout
-        sink = Sink("127.0.0.1", port, [(f"{prefix}/+/corrected", qos)], expected,
-                    deadline=deadline).start()
-        client = WireClient("127.0.0.1", port, f"{prefix}-load")
-        try:
-            start = time.perf_counter()
-            sent = _paced(client, messages, packets, rate, qos)
-            arrivals = sink.join(max(deadline - time.perf_counter(), 0.1))
-        finally:
-            client.close()
-            sink.close()
-    finally:
-        code = target.stop()
-    if kind == "daemon" and code != 0:
-        raise TrimtabError(f"bench: the daemon exited with {code}; see {target.log}")
+
+    def send(client: WireClient, packets: list[bytes]) -> dict[tuple[str, float], float]:
+        return _paced(client, messages, packets, rate, qos)
+
+    arrivals, sent, start = _drive(kind, qos, port=port, workdir=workdir, prefix=prefix,
+                                   messages=messages, wait=seconds + timeout, send=send)
+    assert sent is not None
     first, lost, dupes = _tally(messages, arrivals)
     lat = tuple(sorted(first[k] - sent[k] for k in first if k in sent))
     end = arrivals[-1].at if arrivals else time.perf_counter()

@@ -28,6 +28,7 @@ from trimtab_sim.broker import PrivateBroker, mosquitto_path
 from trimtab_sim.embedded_broker import EmbeddedBroker
 from trimtab_sim.generate import write_stream
 from trimtab_sim.mqttio import Recorder, play, wait_status
+from trimtab_sim.progress import progress_line
 from trimtab_sim.scenario import load_scenario
 
 
@@ -77,20 +78,6 @@ def _say(msg: str) -> None:
     print(f"demo: {msg}", file=sys.stderr, flush=True)
 
 
-def _progress(label: str) -> Any:
-    tty = sys.stderr.isatty()
-    last = [0.0]
-
-    def show(n: int, total: int) -> None:
-        now = time.monotonic()
-        if tty and now - last[0] > 0.25:
-            last[0] = now
-            of = f"/{total:,}" if total else ""
-            print(f"\rdemo: {label} {n:,}{of}", end="", file=sys.stderr, flush=True)
-
-    return show
-
-
 def run_demo(out: Path, *, scenario: Path | None = None, config: Path | None = None,
              seed: int = 0, broker_kind: str = "auto", days: float | None = None,
              timeout: float = 600.0) -> DemoResult:
@@ -123,9 +110,9 @@ def run_demo(out: Path, *, scenario: Path | None = None, config: Path | None = N
             raise TrimtabError(f"the daemon did not come online; see {out / 'daemon.log'}")
         _say("daemon online; playing the stream as fast as the broker takes it")
         started = time.monotonic()
-        play(events, cfg, host="127.0.0.1", port=brk.port, progress=_progress("played"))
+        play(events, cfg, host="127.0.0.1", port=brk.port, progress=progress_line("demo: played"))
         received = recorder.wait(count=n_readings, timeout=timeout,
-                                 progress=_progress("corrected values received"))
+                                 progress=progress_line("demo: corrected values received"))
         elapsed = time.monotonic() - started
         if sys.stderr.isatty():
             print(file=sys.stderr)

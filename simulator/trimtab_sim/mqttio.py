@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import threading
 import time
-from collections.abc import Callable, Iterable
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -22,8 +22,7 @@ from trimtab.config import Config
 from trimtab.errors import DecodeError, TransportError
 from trimtab.messages import Corrected, Reading, Reference
 from trimtab.wiring import make_codec, status_topic, topic_templates
-
-Progress = Callable[[int, int], None]
+from trimtab_sim.progress import Progress
 
 
 def _client(client_id: str, *, clean: bool = True) -> mqtt.Client:

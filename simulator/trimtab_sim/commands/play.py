@@ -10,6 +10,7 @@ from pathlib import Path
 from trimtab.config import load_config
 from trimtab.streamfile import read_events
 from trimtab_sim.mqttio import play
+from trimtab_sim.progress import progress_line
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -28,14 +29,10 @@ def run(args: argparse.Namespace) -> int:
     host = args.host or cfg.broker.host
     port = args.port or cfg.broker.port
     events = list(read_events(args.stream))
-    tty = sys.stderr.isatty()
-    last = [0.0]
+    shown = progress_line("play:")
 
     def progress(n: int, _total: int) -> None:
-        now = time.monotonic()
-        if tty and now - last[0] > 0.25:
-            last[0] = now
-            print(f"\rplay: {n:,}/{len(events):,}", end="", file=sys.stderr, flush=True)
+        shown(n, len(events))
 
     started = time.monotonic()
     sent = play(events, cfg, host=host, port=port, speed=args.speed, qos=args.qos,
