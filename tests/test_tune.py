@@ -34,9 +34,11 @@ from trimtab.model import RidgeModel, dot
 from trimtab.streamfile import read_events, write_events
 from trimtab.terms import Scaler, TermSpec
 from trimtab.tunegrid import (
+    TUNED,
     Candidate,
     Value,
     build_candidates,
+    candidate_document,
     grid_settings,
     load_grid,
     search_settings,
@@ -55,13 +57,13 @@ BIN = Path(sys.executable).parent
 # memories (two elapsed-term scales, so two feature groups), a tight and a loose gate.
 GRID: dict[str, list[Value]] = {
     "alpha": [0.002, 0.013], "lambda": [0.0, 5.0], "memory": [50, 400],
-    "huber_delta": [None, 3.0], "gate_k": [1.5, 12.0], "normalised": [True, False],
+    "huber_delta": [None, 3.0], "gate_k": [1.0, 12.0], "normalised": [True, False],
 }
 PICKS = [  # candidates replayed one by one (settings in TUNED order)
-    (0.013, 5.0, 50, None, 1.5, False),
+    (0.013, 5.0, 50, None, 1.0, False),
     (0.013, 0.0, 400, 3.0, 12.0, True),
     (0.002, 5.0, 400, None, 12.0, False),
-    (0.013, 5.0, 50, 3.0, 1.5, True),
+    (0.013, 5.0, 50, 3.0, 1.0, True),
 ]
 KEYS = ("alpha", "lambda", "memory", "huber_delta", "gate_k", "normalised")
 
@@ -175,7 +177,8 @@ class Run:
     result: TuneResult
 
     def index(self, settings: Mapping[str, Value]) -> int:
-        return next(c.index for c in self.candidates if dict(c.settings) == dict(settings))
+        return next(c.index for c in self.candidates
+                    if all(c.settings[k] == v for k, v in settings.items()))
 
 
 @pytest.fixture(scope="module")
@@ -183,7 +186,8 @@ def perturbed(tmp_path_factory: pytest.TempPathFactory) -> Run:
     """pm25-quay (two monitors, one shared reference) for 5 days, perturbed, tuned on GRID."""
     d = tmp_path_factory.mktemp("tune")
     stream = _perturb(_scenario_stream("pm25-quay", 5, d / "raw.jsonl", 3), d / "quay.jsonl")
-    base = _config_dict(d / "state", alpha=0.01, alpha_min=0.001, alpha_max=0.013)
+    base = _config_dict(d / "state", alpha=0.01, alpha_min=0.001, alpha_max=0.013,
+                        rollback_factor=2.0, alpha_recovery=0.2)
     cfg = parse_config(base)
     trace = record(cfg, stream)
     cands = build_candidates(base, cfg, grid_settings(cfg, GRID), label="grid")
@@ -238,7 +242,8 @@ class TestEqualsReplay:
         for values in PICKS:
             settings = _settings(values)
             i = perturbed.index(settings)
-            cfg = parse_config(_merged(perturbed.base, settings))
+            cfg = perturbed.candidates[i].config
+            assert cfg is not None
             state, out = _replay(cfg, perturbed.stream)
             assert json.loads(json.dumps(perturbed.tuner.engine_state(i))) == state
             o = by_index[i]
@@ -280,7 +285,8 @@ class TestEqualsReplay:
         """Against references with no test part, each sensor's sum is the engine's sq_preq."""
         tuner = Tuner(perturbed.trace, perturbed.candidates, split=1.0, against="references")
         result = tuner.run()
-        o = next(o for o in result.outcomes if o.candidate.settings == _settings(PICKS[1]))
+        pick = perturbed.index(_settings(PICKS[1]))
+        o = next(o for o in result.outcomes if o.candidate.index == pick)
         state = tuner.engine_state(o.candidate.index)
         for name, (tune, test) in o.per_sensor.items():
             d = state["sensors"][name]
@@ -305,31 +311,41 @@ class TestRefused:
     """Candidates the validator refuses are reported with its reasons and never evaluated."""
 
     def test_refused_are_not_evaluated_and_say_why(self, perturbed: Run) -> None:
-        """Out-of-bounds α is refused with the validator's line; only valid ones are advanced."""
+        """An unstable candidate is refused with the validator's line; only valid ones advance."""
         cfg = parse_config(perturbed.base)
-        grid: dict[str, list[Value]] = {"alpha": [0.005, 0.5], "memory": [0, 100]}
+        grid: dict[str, list[Value]] = {"alpha": [0.005, 0.5], "memory": [0, 1, 100],
+                                        "lambda": [5.0]}
         cands = build_candidates(perturbed.base, cfg, grid_settings(cfg, grid), label="grid")
         tuner = Tuner(perturbed.trace, cands)
         result = tuner.run()
         refused = {c.index for c in result.refused}
-        assert refused == {c.index for c in cands if c.settings["alpha"] == 0.5
-                           or c.settings["memory"] == 0}
+        assert refused == {c.index for c in cands if c.settings["memory"] == 0
+                           or (c.settings["alpha"] == 0.5 and c.settings["memory"] == 1)}
         assert not refused & {o.candidate.index for o in result.outcomes}
         for engines in tuner.engines.values():
             assert sum(len(ve) for ve, _ in engines) == len(result.outcomes)
         bad = next(c for c in result.refused
-                   if c.settings["alpha"] == 0.5 and c.settings["memory"] == 100)
-        assert any("learning.alpha: 0.5 is outside [alpha_min, alpha_max]" in why
+                   if c.settings["alpha"] == 0.5 and c.settings["memory"] == 1)
+        assert any("alpha_max·lambda_max/memory = 0.5·5/1 = 2.5 ≥ 1" in why
                    for why in bad.refused)
+
+    def test_a_candidate_is_checked_at_its_own_bounds(self, perturbed: Run) -> None:
+        """α above the config's alpha_max is not refused: the candidate's α is its own bound."""
+        cfg = parse_config(perturbed.base)
+        assert cfg.learning.alpha_max < 0.5
+        (cand,) = build_candidates(perturbed.base, cfg, grid_settings(cfg, {"alpha": [0.5]}),
+                                   label="grid", include_current=False)
+        assert cand.config is not None
+        assert cand.config.learning.alpha == cand.config.learning.alpha_max == 0.5
 
     def test_refusal_is_what_check_says(self, perturbed: Run, tmp_path: Path) -> None:
         """The reasons given are exactly `trimtab check`'s error lines for that config."""
         cfg = parse_config(perturbed.base)
-        settings = {**grid_settings(cfg, {"memory": [0], "alpha": [0.5]})[0]}
+        settings = {**grid_settings(cfg, {"memory": [1], "alpha": [0.5], "lambda": [5.0]})[0]}
         (cand,) = [c for c in build_candidates(perturbed.base, cfg, [settings], label="grid",
                                                include_current=False)]
         assert not cand.valid
-        path = _write_config(_merged(perturbed.base, settings), tmp_path / "bad.toml")
+        path = _write_config(candidate_document(perturbed.base, settings), tmp_path / "bad.toml")
         proc = _trimtab("check", "--no-files", str(path), cwd=tmp_path)
         assert proc.returncode == 2
         expected = [line.split(f"{path}: ", 1)[1] for line in proc.stderr.splitlines()]
@@ -462,17 +478,18 @@ class TestTuneCommand:
         """Table, refused list, snippet, whole config and PNG; check accepts what it recommends."""
         cfg_path, stream = _stream_copy(perturbed, tmp_path)
         grid = tmp_path / "grid.toml"
-        grid.write_text("[grid]\nalpha = [0.002, 0.013, 0.5]\nlambda = [0.0, 5.0]\n")
+        grid.write_text("[grid]\nalpha = [0.002, 0.013, 0.5]\nlambda = [0.0, 5.0]\n"
+                        "memory = [1, 50]\n")
         proc = _trimtab("tune", "-c", str(cfg_path), str(stream), "--grid", str(grid),
                         "--plot", str(tmp_path / "p.png"), "--config-out",
                         str(tmp_path / "best.toml"), cwd=tmp_path)
         assert proc.returncode == 0, proc.stderr
         out = proc.stdout
         assert "rank" in out and "tune RMSE" in out and "test RMSE" in out
-        assert "refused by the config validator" in out and "0.5 is outside" in out
+        assert "refused by the config validator" in out and "0.5·5/1 = 2.5 ≥ 1" in out
         snippet = out.split("run trimtab check):\n", 1)[1]
         chosen = tomllib.loads(snippet)["learning"]
-        merged = _merged(perturbed.base, {k: chosen.get(k) for k in KEYS})
+        merged = candidate_document(perturbed.base, {k: chosen.get(k) for k in TUNED})
         path = _write_config(merged, tmp_path / "with-snippet.toml")
         for p in (path, tmp_path / "best.toml"):
             check = _trimtab("check", "--no-files", str(p), cwd=tmp_path)

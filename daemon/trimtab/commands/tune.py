@@ -32,8 +32,7 @@ from trimtab.tunegrid import (
     load_grid,
     search_settings,
 )
-from trimtab.tuner import Outcome, Score, Tuner, TuneResult, snippet
-from trimtab.tunetrace import record
+from trimtab.tuner import Outcome, Score, TuneResult, snippet, tune_stream
 
 DEFAULT_SEARCH = 64
 
@@ -51,9 +50,12 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--split", type=float, default=0.7,
                    help="fraction of the stream's time span to tune on; the rest is the test "
                         "part (default 0.7; 1 = no test part)")
-    p.add_argument("--against", choices=("auto", "truth", "references"), default="auto",
-                   help="score corrected values against the readings' truth, or predictions "
-                        "against the references (auto: truth when the stream has it)")
+    p.add_argument("--against", choices=("auto", "truth", "references", "spans"),
+                   default="auto",
+                   help="score corrected values against the readings' truth, predictions "
+                        "against the references, or against the references each counted once "
+                        "per corrected value since the previous one (spans: sparse references, "
+                        "no truth); auto: truth when the stream has it")
     p.add_argument("--top", type=int, default=20, help="rows of the ranked table (0: all)")
     p.add_argument("--plot", type=Path, default=None, metavar="FILE.png",
                    help="write a PNG of tune RMSE against alpha and lambda (needs matplotlib)")
@@ -97,13 +99,16 @@ def _fmt(v: float | None, digits: int = 4) -> str:
 def _settings_cells(c: Candidate) -> list[str]:
     s = c.settings
     delta = s["huber_delta"]
+    scaler = "fixed" if s["scaler"] == "fixed" else f"{s['scaler_width']:g}sd/{s['scaler_span']:g}s"
     return [f"{s['alpha']:g}", f"{s['lambda']:g}", str(s["memory"]),
             "-" if delta is None else f"{delta:g}", f"{s['gate_k']:g}",
-            "yes" if s["normalised"] else "no"]
+            "yes" if s["normalised"] else "no", scaler, f"{s['rollback_factor']:g}",
+            f"{s['alpha_recovery']:g}"]
 
 
 def _table(result: TuneResult, top: int) -> list[str]:
-    head = ["rank", "alpha", "lambda", "memory", "huber", "gate_k", "norm", "tune RMSE",
+    head = ["rank", "alpha", "lambda", "memory", "huber", "gate_k", "norm", "scaler", "rollback",
+            "recovery", "tune RMSE",
             "test RMSE", "bias", "rollbacks", "gated", "margin", "reached", ""]
     rows = [head]
     ranked = list(enumerate(result.outcomes, start=1))
@@ -151,9 +156,11 @@ def _refused(result: TuneResult) -> list[str]:
     return out
 
 
-def _cell(v: float | int | bool) -> str:
+def _cell(v: float | int | bool | str) -> str:
     if isinstance(v, bool):
         return "true" if v else "false"
+    if isinstance(v, str):
+        return v
     return f"{v:g}"
 
 
@@ -250,21 +257,22 @@ def run(args: argparse.Namespace) -> int:
     with _Interrupts() as stop:
         if loud:
             print(f"tune: reading {args.stream}", file=sys.stderr)
-        trace = record(cfg, args.stream, should_stop=stop, progress=show_read)
-        read_s = time.monotonic() - started
-        stop.flag = False
-        tuner = Tuner(trace, candidates, split=args.split, against=args.against)
-        result = tuner.run(should_stop=stop, progress=show_eval)
+        run = tune_stream(args.stream, candidates, split=args.split, against=args.against,
+                          should_stop=stop, read_progress=show_read, progress=show_eval,
+                          base=cfg)
+        result = run.result
+        traces = [t.trace for t in run.tuners]
     if tty:
         print("\r" + " " * 60 + "\r", end="", file=sys.stderr)
     elapsed = time.monotonic() - started
     if loud:
         k = len(result.outcomes)
-        print(f"tune: {trace.events} events read in {read_s:.2f} s, {k} candidates evaluated "
-              f"in {elapsed - read_s:.2f} s ({k * trace.events / max(elapsed, 1e-9):,.0f} "
-              "candidate-events/s overall)", file=sys.stderr)
-        if trace.rejected:
-            print(f"tune: rejected lines {dict(trace.rejected)}", file=sys.stderr)
+        print(f"tune: {result.events} events read {len(traces)} time(s) (once per scaler "
+              f"group), {k} candidates evaluated in {elapsed:.2f} s "
+              f"({k * result.events / max(elapsed, 1e-9):,.0f} candidate-events/s overall)",
+              file=sys.stderr)
+        if traces[0].rejected:
+            print(f"tune: rejected lines {dict(traces[0].rejected)}", file=sys.stderr)
     best = result.best
     if best is not None and best.candidate.config is not None:
         if args.config_out is not None:
