@@ -24,6 +24,8 @@ from typing import Any
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from trimtab.commands.check import to_toml
 from trimtab.commands.replay import replay
@@ -39,11 +41,13 @@ from trimtab.tunegrid import (
     Value,
     build_candidates,
     candidate_document,
+    current_settings,
     grid_settings,
     load_grid,
     search_settings,
 )
-from trimtab.tuner import Tuner, TuneResult
+from trimtab.stability import step_check
+from trimtab.tuner import Tuner, TuneResult, tune_stream
 from trimtab.tunetrace import Trace, record
 from trimtab.vengine import _seq_add, phi_rows
 from trimtab.wiring import make_engine
@@ -254,6 +258,35 @@ class TestEqualsReplay:
                        "reference_stuck", "reference_pending", "reference_applied"):
             assert status in seen, f"the picked candidates never reached {status}"
 
+    def test_drift_settings_equal_replay_state_and_score(self, perturbed: Run) -> None:
+        """Scaler modes, widths and spans, the gap lift, α recovery, the rollback factor and
+        the band: every combination ends with replay's state and score, over one record pass
+        per scaler group."""
+        cfg = parse_config(perturbed.base)
+        grid: dict[str, list[Value]] = {
+            "alpha": [0.013], "alpha_max": [0.013, 0.05], "gate_k": [1.0],
+            "step_adapt": ["gap", "none"], "step_gap": [3600.0],
+            "scaler": ["follow", "fixed"], "scaler_width": [1.0, 3.0],
+            "scaler_span": [86400.0, 2592000.0], "rollback_factor": [2.0, 8.0],
+            "alpha_recovery": [0.0, 0.5],
+        }
+        cands = build_candidates(perturbed.base, cfg, grid_settings(cfg, grid), label="grid",
+                                 include_current=False)
+        assert all(c.valid for c in cands)
+        run = tune_stream(perturbed.stream, cands, split=0.7)
+        assert len(run.tuners) == 5  # fixed, and follow at 2 widths × 2 spans
+        by_index = {o.candidate.index: o for o in run.result.outcomes}
+        seen: set[str] = set()
+        for cand in cands[::3]:
+            assert cand.config is not None
+            state, out = _replay(cand.config, perturbed.stream)
+            assert json.loads(json.dumps(run.engine_state(cand.index))) == state, cand.settings
+            o = by_index[cand.index]
+            got = [(o.tune.sse, o.tune.total, o.tune.n), (o.test.sse, o.test.total, o.test.n)]
+            assert got == _replay_scores(perturbed.stream, out, run.tuners[0].split_t)
+            seen |= {k for k, v in state["counts"].items() if v}
+        assert {"scaler_moved", "reference_rolled_back", "reference_level_shift"} <= seen
+
     def test_replay_command_gives_the_same_state(self, perturbed: Run, tmp_path: Path) -> None:
         """`trimtab replay --state-out` as a real process leaves the tuner's state, bit for bit."""
         settings = _settings(PICKS[0])
@@ -350,6 +383,37 @@ class TestRefused:
         assert proc.returncode == 2
         expected = [line.split(f"{path}: ", 1)[1] for line in proc.stderr.splitlines()]
         assert [why.split("candidate 0: ", 1)[1] for why in cand.refused] == expected
+
+
+class TestOwnBounds:
+    """Every accepted candidate is stable at the bounds it actually uses."""
+
+    @settings(max_examples=80, deadline=None)
+    @given(alpha=st.floats(1e-3, 3.0), alpha_max=st.floats(1e-3, 3.0),
+           lam=st.floats(0.0, 50.0), memory=st.integers(1, 400),
+           adapt=st.sampled_from(["gap", "none"]), normalised=st.booleans())
+    def test_accepted_candidates_are_stable_at_their_own_bounds(
+            self, alpha: float, alpha_max: float, lam: float, memory: int, adapt: str,
+            normalised: bool) -> None:
+        """α ≤ alpha_max (= α without the gap lift), λ = lambda_max, and the proofs hold there."""
+        base = _config_dict(Path("/tmp/unused-state"))
+        cfg = parse_config(base)
+        settings_ = {**current_settings(cfg), "alpha": alpha, "alpha_max": alpha_max,
+                     "lambda": lam, "memory": memory, "step_adapt": adapt,
+                     "normalised": normalised}
+        (cand,) = build_candidates(base, cfg, [settings_], label="grid", include_current=False)
+        if cand.config is None:
+            return
+        lc = cand.config.learning
+        assert lc.alpha <= lc.alpha_max and lc.lam == lc.lambda_max
+        if adapt == "none":
+            assert lc.alpha_max == lc.alpha
+        assert lc.alpha_max * lc.lambda_max / lc.memory < 1.0
+        for label, group in cand.config.settings_groups().items():
+            check = step_check(label, terms=group.term_count(), alpha_max=lc.alpha_max,
+                               lambda_max=lc.lambda_max, memory=lc.memory,
+                               clip=lc.feature_clip, normalised=lc.normalised)
+            assert check.margin > 1.0
 
 
 class TestCandidates:

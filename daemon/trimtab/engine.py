@@ -362,7 +362,8 @@ class Engine:
             st.last_reading_t = r.t
             st.buffer.add(r.t, [float(v) for v in values])
             self._ensure_model(st, r)
-            if st.ranges is not None and st.model is not None:
+            if st.ranges is not None and st.model is not None and \
+                    self._cfg.learning.scaler == "follow":
                 st.ranges.observe(st.spec.row(inputs, r.t, st.model.origin), r.t,
                                   self._cfg.learning.scaler_span)
             self.counts["reading_accepted"] += 1
