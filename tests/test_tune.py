@@ -33,6 +33,7 @@ from trimtab.config import Config, load_config, parse_config
 from trimtab.errors import ConfigError, DataError
 from trimtab.messages import Reading, Reference
 from trimtab.model import RidgeModel, dot
+from trimtab.stability import step_check
 from trimtab.streamfile import read_events, write_events
 from trimtab.terms import Scaler, TermSpec
 from trimtab.tunegrid import (
@@ -46,7 +47,6 @@ from trimtab.tunegrid import (
     load_grid,
     search_settings,
 )
-from trimtab.stability import step_check
 from trimtab.tuner import Tuner, TuneResult, tune_stream
 from trimtab.tunetrace import Trace, record
 from trimtab.vengine import _seq_add, phi_rows
