@@ -385,6 +385,40 @@ class TestRefused:
         assert [why.split("candidate 0: ", 1)[1] for why in cand.refused] == expected
 
 
+class TestFolds:
+    """Rolling-origin folds of the tune part: their scores add up to the tune score."""
+
+    def test_folds_partition_the_tune_part(self, perturbed: Run) -> None:
+        """Fold counts add up to the tune count; one fold is the tune score bit for bit."""
+        for folds in (1, 4):
+            tuner = Tuner(perturbed.trace, perturbed.candidates, split=0.7, folds=folds)
+            result = tuner.run()
+            for o in result.outcomes[:5]:
+                assert len(o.folds) == folds
+                assert sum(f.n for f in o.folds) == o.tune.n
+                if folds == 1:
+                    assert o.folds[0].sse == o.tune.sse
+                else:
+                    assert math.isclose(sum(f.sse for f in o.folds), o.tune.sse, rel_tol=1e-9)
+
+    def test_the_report_says_the_lead_over_the_runner_up(self, perturbed: Run,
+                                                         tmp_path: Path) -> None:
+        """`trimtab tune` prints the folds' spread and how far rank 1 is ahead of rank 2."""
+        cfg_path, stream = _stream_copy(perturbed, tmp_path)
+        grid = tmp_path / "grid.toml"
+        grid.write_text("[grid]\nalpha = [0.002, 0.013]\nlambda = [0.0, 5.0]\n")
+        proc = _trimtab("tune", "-c", str(cfg_path), str(stream), "--grid", str(grid),
+                        "--folds", "4", "--json", cwd=tmp_path)
+        assert proc.returncode == 0, proc.stderr
+        doc = json.loads(proc.stdout)
+        ranked = doc["ranked"]
+        assert all(len(o["folds"]) == 4 for o in ranked)
+        lead = doc["lead"]
+        assert lead["runner_up"] == ranked[1]["candidate"] and lead["folds"] == 4
+        r1, r2 = ranked[0]["tune"]["rmse"], ranked[1]["tune"]["rmse"]
+        assert math.isclose(lead["ahead"], (r2 - r1) / r2)
+
+
 class TestOwnBounds:
     """Every accepted candidate is stable at the bounds it actually uses."""
 

@@ -88,6 +88,13 @@ class Outcome:
     settings, evaluated at this candidate's α and λ (the largest it ever uses)."""
     reached: float
     """2 / the largest a·(λ/m + ‖φ‖²) of any step it took: how near the steps actually came."""
+    folds: list[Score] = field(default_factory=list)
+    """The tune part's score in each of its consecutive time blocks (rolling origin)."""
+
+    def fold_spread(self) -> tuple[float, float] | None:
+        """The smallest and largest fold RMSE, or None when no fold was scored."""
+        got = [s.rmse for s in self.folds if s.rmse is not None]
+        return (min(got), max(got)) if got else None
 
 
 @dataclass(slots=True)
@@ -123,7 +130,10 @@ class Tuner:
     """Evaluate candidates on a recorded stream; see the module docstring."""
 
     def __init__(self, trace: Trace, candidates: Sequence[Candidate], *, split: float = 0.7,
-                 against: Against | Literal["auto"] = "auto") -> None:
+                 against: Against | Literal["auto"] = "auto", folds: int = 3) -> None:
+        if not 1 <= folds <= 100:
+            raise DataError(f"folds = {folds}: give between 1 and 100 blocks of the tune part")
+        self.folds = folds
         if not 0.0 < split <= 1.0:
             raise DataError(f"split = {split}: give a fraction of the stream's time span in (0, 1]")
         self.trace = trace
@@ -144,6 +154,16 @@ class Tuner:
 
     def _part(self, t: float) -> int:
         return 0 if self.split_t is None or t < self.split_t else 1
+
+    def _fold(self, t: float) -> int:
+        """Which of the tune part's consecutive time blocks t falls in; -1 in the test part."""
+        t0 = self.trace.t_first
+        end = self.split_t if self.split_t is not None else self.trace.t_last
+        if t0 is None or end is None or self._part(t) == 1:
+            return -1
+        if end <= t0:
+            return 0
+        return min(self.folds - 1, max(0, int(self.folds * (t - t0) / (end - t0))))
 
     def _groups(self, tr: SensorTrace, base: RidgeModel) -> dict[Scaler, list[int]]:
         groups: dict[Scaler, list[int]] = {}
@@ -194,7 +214,7 @@ class Tuner:
             rows.append(moved.phi(dict(zip(tr.inputs, r.values, strict=True)), r.t_pair)[0])
         ref_phi = np.array(rows).reshape(len(tr.refs), n)
         ref_y = np.array([r.y for r in tr.refs], dtype=np.float64)
-        ve = VEngine(template, settings, common, ref_phi, ref_y, scalers)
+        ve = VEngine(template, settings, common, ref_phi, ref_y, scalers, folds=self.folds)
         if self.against == "spans":
             pos = np.array([r.pos for r in tr.refs], dtype=np.int64)
             ve.ref_w = np.maximum(1, np.diff(pos, prepend=0))
@@ -210,6 +230,7 @@ class Tuner:
         raw = X[:, 0]
         part = (np.zeros(len(t), dtype=np.int8) if self.split_t is None
                 else (t >= self.split_t).astype(np.int8))
+        fold = np.array([self._fold(x) for x in t.tolist()], dtype=np.int64)
         ready = tr.unready
         follow = ve.ref_scalers is not None
         phi = None if follow else phi_rows(ve.model, X[ready:], t[ready:])
@@ -225,14 +246,15 @@ class Tuner:
                         block = phi_rows(ve.model, X[pos:end], t[pos:end], ve.scaler)
                     else:
                         block = phi[pos - ready : end - ready]
-                    ve.score_outputs(block, raw[pos:end], truth[pos:end], part[pos:end])
+                    ve.score_outputs(block, raw[pos:end], truth[pos:end], part[pos:end],
+                                     fold[pos:end])
                     tick(end - pos)
                     pos = end
                     if should_stop():
                         return False
                 if i < len(tr.refs):
                     ref = tr.refs[i]
-                    ve.reference(i, ref.t, self._part(ref.t))
+                    ve.reference(i, ref.t, self._part(ref.t), self._fold(ref.t))
                     tick(1)
                     if i % 64 == 63 and should_stop():
                         return False
@@ -334,12 +356,42 @@ class Tuner:
                     gain = max(gain, float(ve.max_gain[j]))
         assert cand.config is not None
         lc = cand.config.learning
-        margin = min(step_check(label, terms=s.term_count(), alpha_max=lc.alpha,
-                                lambda_max=lc.lam, memory=lc.memory, clip=lc.feature_clip,
+        margin = min(step_check(label, terms=s.term_count(), alpha_max=lc.alpha_max,
+                                lambda_max=lc.lambda_max, memory=lc.memory,
+                                clip=lc.feature_clip,
                                 normalised=lc.normalised).margin
                      for label, s in cand.config.settings_groups().items())
         reached = STEP_BOUND / gain if gain > 0.0 else math.inf
-        return Outcome(cand, pooled[0], pooled[1], per, rollbacks, gated, margin, reached)
+        return Outcome(cand, pooled[0], pooled[1], per, rollbacks, gated, margin, reached,
+                       self._fold_scores(pos))
+
+    def _fold_scores(self, pos: int) -> list[Score]:
+        """The tune part's score per fold, pooled over sensors (raw-only sensors included)."""
+        sse = [0.0] * self.folds
+        n = [0] * self.folds
+        if self.against == "truth":
+            for tr in self.trace.sensors.values():
+                if self.trace.models[tr.sensor] is not None:
+                    continue
+                for x_t, raw, truth in zip(tr.out_t, tr.out_x[:: len(tr.inputs)],
+                                           tr.out_truth, strict=True):
+                    f = self._fold(x_t)
+                    if f >= 0 and not math.isnan(truth):
+                        sse[f] += (raw - truth) ** 2
+                        n[f] += 1
+        for engines in self.engines.values():
+            for ve, members in engines:
+                if pos not in members:
+                    continue
+                j = members.index(pos)
+                for f in range(self.folds):
+                    if self.against == "truth":
+                        sse[f] += float(ve.fold_out_sse[f, j])
+                        n[f] += int(ve.fold_out_n[f])
+                    else:
+                        sse[f] += float(ve.fold_ref_sse[f, j])
+                        n[f] += int(ve.fold_ref_n[f, j])
+        return [Score(a, 0.0, b) for a, b in zip(sse, n, strict=True)]
 
     def _result(self, complete: bool) -> TuneResult:
         outcomes = [self._outcome(p) for p in range(len(self.valid))]
@@ -419,7 +471,7 @@ def tune_stream(stream: str | Path, candidates: Sequence[Candidate], *, split: f
                 should_stop: Callable[[], bool] | None = None,
                 read_progress: Callable[[int], None] | None = None,
                 progress: Callable[[float], None] | None = None,
-                base: Config | None = None) -> GroupedRun:
+                base: Config | None = None, folds: int = 3) -> GroupedRun:
     """Record the stream once per scaler group and evaluate each group's candidates on it.
 
     Pairing, buffers and the moves of a followed scaler depend on no other tuned setting, so
@@ -435,7 +487,7 @@ def tune_stream(stream: str | Path, candidates: Sequence[Candidate], *, split: f
         if base is None:
             raise DataError("no candidate was valid and no config was given to read the stream")
         trace = record(base, stream, should_stop=should_stop, progress=read_progress)
-        tuner = Tuner(trace, refused, split=split, against=against)
+        tuner = Tuner(trace, refused, split=split, against=against, folds=folds)
         return GroupedRun(tuner.run(should_stop=should_stop), [tuner])
     tuners: list[Tuner] = []
     results: list[TuneResult] = []
@@ -444,7 +496,7 @@ def tune_stream(stream: str | Path, candidates: Sequence[Candidate], *, split: f
         trace = record(members[0].config, stream, should_stop=should_stop,
                        progress=read_progress)
         tuner = Tuner(trace, members + (refused if i == 0 else []), split=split,
-                      against=against)
+                      against=against, folds=folds)
         tuners.append(tuner)
         done = len(results)
 

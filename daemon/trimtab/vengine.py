@@ -113,7 +113,8 @@ class VEngine:
     """The learning state of K candidates for one sensor; see the module docstring."""
 
     def __init__(self, model: RidgeModel, settings: Settings, common: Common,
-                 ref_phi: F64, ref_y: F64, ref_scalers: list[Scaler] | None = None) -> None:
+                 ref_phi: F64, ref_y: F64, ref_scalers: list[Scaler] | None = None,
+                 folds: int = 1) -> None:
         k = len(settings)
         n = model.n_terms
         self.model = model
@@ -164,6 +165,12 @@ class VEngine:
         self.out_sse = np.zeros((2, k))
         self.out_sum = np.zeros((2, k))
         self.out_n = np.zeros(2, dtype=np.int64)
+        # the same sums per fold of the tune part (rolling origin: each fold is predicted
+        # from everything before it)
+        self.fold_ref_sse = np.zeros((folds, k))
+        self.fold_ref_n = np.zeros((folds, k), dtype=np.int64)
+        self.fold_out_sse = np.zeros((folds, k))
+        self.fold_out_n = np.zeros(folds, dtype=np.int64)
 
     def __len__(self) -> int:
         return len(self.alpha)
@@ -270,7 +277,7 @@ class VEngine:
 
     # -- one paired reference: the engine's _learn -------------------------------------------------
 
-    def reference(self, i: int, t: float, part: int) -> None:
+    def reference(self, i: int, t: float, part: int, fold: int = -1) -> None:
         """Gate and apply reference ``i`` (paired at record time) for every candidate."""
         if self.ref_scalers is not None:
             self._move(self.ref_scalers[i])
@@ -296,6 +303,10 @@ class VEngine:
         self.ref_sse[part] = np.where(fin, self.ref_sse[part] + sq, self.ref_sse[part])
         self.ref_sum[part] = np.where(fin, self.ref_sum[part] + rw, self.ref_sum[part])
         self.ref_n[part] += fin * w
+        if fold >= 0:
+            self.fold_ref_sse[fold] = np.where(fin, self.fold_ref_sse[fold] + sq,
+                                               self.fold_ref_sse[fold])
+            self.fold_ref_n[fold] += fin * w
         # Guard.judge
         gate = (self.applied >= self.c.warmup) & (self.spread > 0.0)
         scale = np.maximum(self.spread, SQRT_HALF_PI * self.long_abs)  # Guard.judge
@@ -352,7 +363,8 @@ class VEngine:
 
     # -- corrected values: the engine's _correct, scored -------------------------------------------
 
-    def score_outputs(self, phi: F64 | None, raw: F64, truth: F64, part: NDArray[np.int8]) -> None:
+    def score_outputs(self, phi: F64 | None, raw: F64, truth: F64, part: NDArray[np.int8],
+                      fold: I64 | None = None) -> None:
         """Correct a block of readings (no reference between them) and score them against truth.
 
         ``phi`` is None for readings before the model existed: those are published raw.
@@ -388,6 +400,13 @@ class VEngine:
             self.out_sse[p] = _seq_add(self.out_sse[p], err * err)
             self.out_sum[p] = _seq_add(self.out_sum[p], err)
             self.out_n[p] += int(cols.sum())
+        if fold is None:
+            return
+        for f in np.unique(fold[has & (fold >= 0)]).tolist():
+            cols = has & (fold == f)
+            err = value[:, cols] - truth[cols][None, :]
+            self.fold_out_sse[f] = _seq_add(self.fold_out_sse[f], err * err)
+            self.fold_out_n[f] += int(cols.sum())
 
     # -- one candidate's state in the engine's own form ------------------------------------------
 

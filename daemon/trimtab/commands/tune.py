@@ -56,6 +56,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                         "against the references, or against the references each counted once "
                         "per corrected value since the previous one (spans: sparse references, "
                         "no truth); auto: truth when the stream has it")
+    p.add_argument("--folds", type=int, default=3, metavar="N",
+                   help="consecutive blocks of the tune part scored on their own (rolling "
+                        "origin: each is predicted from everything before it); their spread "
+                        "and the lead over the runner-up are printed (default 3)")
     p.add_argument("--top", type=int, default=20, help="rows of the ranked table (0: all)")
     p.add_argument("--plot", type=Path, default=None, metavar="FILE.png",
                    help="write a PNG of tune RMSE against alpha and lambda (needs matplotlib)")
@@ -99,16 +103,24 @@ def _fmt(v: float | None, digits: int = 4) -> str:
 def _settings_cells(c: Candidate) -> list[str]:
     s = c.settings
     delta = s["huber_delta"]
-    scaler = "fixed" if s["scaler"] == "fixed" else f"{s['scaler_width']:g}sd/{s['scaler_span']:g}s"
-    return [f"{s['alpha']:g}", f"{s['lambda']:g}", str(s["memory"]),
+    scaler = ("fixed" if s["scaler"] == "fixed" else
+              f"{s['scaler_width']:g}sd/{_num(s['scaler_span']) / 86400.0:.3g}d")
+    step = "-" if s["step_adapt"] == "none" else f"gap {_num(s['step_gap']) / 3600.0:.3g}h"
+    top = c.config.learning.alpha_max if c.config is not None else s["alpha_max"]
+    return [f"{s['alpha']:g}", f"{top:g}", f"{s['lambda']:g}", str(s["memory"]),
             "-" if delta is None else f"{delta:g}", f"{s['gate_k']:g}",
-            "yes" if s["normalised"] else "no", scaler, f"{s['rollback_factor']:g}",
+            "yes" if s["normalised"] else "no", step, scaler, f"{s['rollback_factor']:g}",
             f"{s['alpha_recovery']:g}"]
 
 
+def _num(v: object) -> float:
+    assert isinstance(v, int | float)
+    return float(v)
+
+
 def _table(result: TuneResult, top: int) -> list[str]:
-    head = ["rank", "alpha", "lambda", "memory", "huber", "gate_k", "norm", "scaler", "rollback",
-            "recovery", "tune RMSE",
+    head = ["rank", "alpha", "alpha_max", "lambda", "memory", "huber", "gate_k", "norm", "step",
+            "scaler", "rollback", "recovery", "tune RMSE",
             "test RMSE", "bias", "rollbacks", "gated", "margin", "reached", ""]
     rows = [head]
     ranked = list(enumerate(result.outcomes, start=1))
@@ -194,9 +206,40 @@ def _report(result: TuneResult, args: argparse.Namespace) -> list[str]:
     for name, (tune, test) in best.per_sensor.items():
         rows.append([name, _fmt(tune.rmse), str(tune.n), _fmt(test.rmse), str(test.n)])
     lines += ["", "per sensor, rank 1:", *("  " + line for line in _columns(rows))]
+    lines += ["", *_lead(result)]
     lines += ["", "recommended settings (set these keys in the config's [learning] table, then "
               "run trimtab check):", snippet(best)]
     return lines
+
+
+def lead(result: TuneResult) -> dict[str, Any] | None:
+    """How far the recommendation is ahead of the runner-up, pooled and fold by fold."""
+    if len(result.outcomes) < 2 or result.best is None:
+        return None
+    best, second = result.outcomes[0], result.outcomes[1]
+    if best.tune.rmse is None or second.tune.rmse is None:
+        return None
+    folds = [(a.rmse, b.rmse) for a, b in zip(best.folds, second.folds, strict=True)
+             if a.rmse is not None and b.rmse is not None]
+    return {"runner_up": second.candidate.index,
+            "ahead": (second.tune.rmse - best.tune.rmse) / second.tune.rmse,
+            "folds_ahead": sum(a <= b for a, b in folds), "folds": len(folds)}
+
+
+def _lead(result: TuneResult) -> list[str]:
+    best = result.best
+    assert best is not None
+    out = []
+    spread = best.fold_spread()
+    if spread is not None and len(best.folds) > 1:
+        out.append(f"rank 1 over {len(best.folds)} folds of the tune part: RMSE "
+                   f"{_fmt(spread[0])} to {_fmt(spread[1])}")
+    d = lead(result)
+    if d is not None:
+        out.append(f"rank 1 is {d['ahead']:.1%} below the runner-up (candidate "
+                   f"{d['runner_up']}) in tune RMSE, and at or below it in {d['folds_ahead']} of "
+                   f"{d['folds']} folds")
+    return out
 
 
 def _score_json(s: Score) -> dict[str, Any]:
@@ -210,6 +253,7 @@ def _outcome_json(o: Outcome) -> dict[str, Any]:
         "tune": _score_json(o.tune), "test": _score_json(o.test),
         "rollbacks": o.rollbacks, "gated": o.gated,
         "margin": o.margin, "reached": None if o.reached == float("inf") else o.reached,
+        "folds": [_score_json(f) for f in o.folds],
         "per_sensor": {k: {"tune": _score_json(a), "test": _score_json(b)}
                        for k, (a, b) in o.per_sensor.items()},
     }
@@ -224,6 +268,7 @@ def _as_json(result: TuneResult) -> str:
         "refused": [{"candidate": c.index, "settings": dict(c.settings), "errors": list(c.refused)}
                     for c in result.refused],
         "recommended": None if best is None else snippet(best),
+        "lead": lead(result),
     }
     return json.dumps(out, indent=2, ensure_ascii=False)
 
@@ -259,7 +304,7 @@ def run(args: argparse.Namespace) -> int:
             print(f"tune: reading {args.stream}", file=sys.stderr)
         run = tune_stream(args.stream, candidates, split=args.split, against=args.against,
                           should_stop=stop, read_progress=show_read, progress=show_eval,
-                          base=cfg)
+                          base=cfg, folds=args.folds)
         result = run.result
         traces = [t.trace for t in run.tuners]
     if tty:
