@@ -647,6 +647,7 @@ class Engine:
                 "rmse": rmse,
                 "alpha": st.guard.alpha,
                 "rollbacks": st.guard.rollbacks,
+                "recoveries": st.guard.recoveries,
                 "held": st.guard.held,
                 "band_coverage": st.band_hit / st.band_n if st.band_n else None,
                 "scaler": None if st.model is None else st.model.scaler.to_dict(),

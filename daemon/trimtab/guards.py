@@ -88,6 +88,8 @@ class Guard:
     fresh: bool = True
     long_abs: float = 0.0
     long_n: int = 0
+    recoveries: int = 0
+    """References after which α moved back toward its setting."""
 
     def judge(self, residual: float, spread: float, s: GuardSettings) -> Verdict:
         """Decide what to do with a paired reference whose prequential residual is given."""
@@ -143,8 +145,9 @@ class Guard:
 
     def recover(self, s: GuardSettings) -> None:
         """After a good reference: α moves ``alpha_recovery`` of the way back to its setting."""
-        if self.alpha < s.alpha:
+        if self.alpha < s.alpha and s.alpha_recovery > 0.0:
             self.alpha = min(s.alpha, self.alpha + s.alpha_recovery * (s.alpha - self.alpha))
+            self.recoveries += 1
 
     def due_snapshot(self, s: GuardSettings) -> bool:
         """Whether enough references were applied since the last good snapshot."""
@@ -196,6 +199,7 @@ class Guard:
             "fresh": self.fresh,
             "long_abs": self.long_abs,
             "long_n": self.long_n,
+            "recoveries": self.recoveries,
         }
 
     @classmethod
@@ -215,4 +219,5 @@ class Guard:
             fresh=bool(d["fresh"]),
             long_abs=float(d["long_abs"]),
             long_n=int(d["long_n"]),
+            recoveries=int(d["recoveries"]),
         )

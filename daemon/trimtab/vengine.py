@@ -149,6 +149,7 @@ class VEngine:
         self.fresh = np.ones(k, dtype=bool)
         self.long_abs = np.zeros(k)
         self.long_n = np.zeros(k, dtype=np.int64)
+        self.recoveries = np.zeros(k, dtype=np.int64)
         self.band_k = np.full(k, band_start(common.band_coverage))
         self.band_hit = np.zeros(k, dtype=np.int64)
         self.band_n = np.zeros(k, dtype=np.int64)
@@ -257,8 +258,9 @@ class VEngine:
             status[boom] = _ROLLED_BACK
         good = ok & ~boom
         # Guard.recover
-        low = good & (self.alpha < s.alpha)
+        low = good & (self.alpha < s.alpha) & (s.alpha_recovery > 0.0)
         if low.any():
+            self.recoveries += low
             back = np.minimum(s.alpha, self.alpha + s.alpha_recovery * (s.alpha - self.alpha))
             self.alpha = np.where(low, back, self.alpha)
         status[good] = _APPLIED
@@ -435,6 +437,7 @@ class VEngine:
             since_snapshot=int(self.since[i]),
             held=bool(self.held[i]), rollbacks=int(self.rollbacks[i]), fresh=bool(self.fresh[i]),
             long_abs=float(self.long_abs[i]), long_n=int(self.long_n[i]),
+            recoveries=int(self.recoveries[i]),
         )
         last = float(self.last_applied_t[i])
         model = self.model_of(i, self.th[:, i], float(self.spread[i]), int(self.updates[i]))
