@@ -275,6 +275,12 @@ class LearningSettings(Section):
     gate_run: PosInt = Field(
         default=3, description="suspects in a row on one side accepted as a shift"
     )
+    max_references: PosInt = Field(
+        default=60, description="most references a sensor learns from per reference_interval"
+    )
+    shift_after: NonNegFloat = Field(
+        default=3600.0, description="s of event time a run of suspects must span to be a shift"
+    )
     warmup: Annotated[int, Strict(), Field(ge=0)] = Field(
         default=5, description="references of warmup"
     )

@@ -238,6 +238,9 @@ class SensorsSettings(Section):
     """Which sensors this daemon serves, their model settings, and shared reference streams."""
 
     ids: tuple[SensorId, ...] = Field(default=(), description="sensor ids served")
+    max: PosInt = Field(
+        default=10000, description="most sensors with state; a new id past it is refused"
+    )
     pattern: Str | None = Field(
         default=None, description="regex; ids it matches in full are served too"
     )
