@@ -61,15 +61,11 @@ __all__ = [
     "StatusSettings",
     "TlsSettings",
     "TopicSettings",
-    "derived_figures",
     "file_problems",
     "load_config",
     "parse_config",
     "restart_required",
 ]
-
-derived_figures = stability.derived_figures
-
 
 class TlsSettings(Section):
     """TLS to the broker; with no ``ca_file`` the system's trust store is used."""

@@ -22,8 +22,9 @@ from pathlib import Path
 from types import FrameType
 from typing import Any
 
-from trimtab.config import derived_figures, load_config
+from trimtab.config import load_config
 from trimtab.errors import DataError
+from trimtab.figures import derived_figures
 from trimtab.tunegrid import (
     TUNED,
     Candidate,
