@@ -62,7 +62,8 @@ class Recovery:
     ``state`` is ``None`` when no checkpoint exists (start the engine empty); ``generation`` is
     the checkpoint's generation (0 without one); ``records`` are every journaled event after
     that checkpoint, in order; ``torn_bytes`` is the length of the torn final line cut from
-    the newest journal; ``skipped`` has one line per bad checkpoint passed over.
+    the newest journal; ``skipped`` has one line per bad checkpoint passed over; ``current``
+    is how many of the records, the last ones, come from the journal now appended to.
     """
 
     state: dict[str, Any] | None
@@ -70,6 +71,7 @@ class Recovery:
     records: list[dict[str, Any]]
     torn_bytes: int
     skipped: list[str]
+    current: int = 0
 
 
 class StateStore:
@@ -83,15 +85,20 @@ class StateStore:
         self._checkpoints = CheckpointStore(self._dir, keep=keep)
         self._journal: Journal | None = None
         self._generation = 0
+        self._reopen = False
         self._lock_fd: int | None = None
         if not self._dir.exists():
-            self._dir.parent.mkdir(parents=True, exist_ok=True)
             try:
-                self._dir.mkdir(mode=DIR_MODE)
-            except FileExistsError:
-                pass
-            else:
-                os.chmod(self._dir, DIR_MODE)  # mkdir's mode is filtered by the umask
+                self._dir.parent.mkdir(parents=True, exist_ok=True)
+                try:
+                    self._dir.mkdir(mode=DIR_MODE)
+                except FileExistsError:
+                    pass
+                else:
+                    os.chmod(self._dir, DIR_MODE)  # mkdir's mode is filtered by the umask
+            except OSError as exc:
+                raise StateError(f"state directory {self._dir}: cannot create: {exc.strerror}") \
+                    from exc
 
     @property
     def directory(self) -> Path:
@@ -152,6 +159,7 @@ class StateStore:
 
         records: list[dict[str, Any]] = []
         torn = 0
+        current = 0
         for generation in range(base, newest + 1):
             path = self.journal_path(generation)
             if generation not in journals:
@@ -171,6 +179,7 @@ class StateStore:
                 )
             torn = tail.torn_bytes
             records.extend(found)
+            current = len(found)
 
         skipped = [] if loaded is None else list(loaded.skipped)
         if loaded is not None:
@@ -195,9 +204,15 @@ class StateStore:
             records=records,
             torn_bytes=torn,
             skipped=skipped,
+            current=current,
         )
 
     def _active(self, operation: str) -> Journal:
+        if self._journal is None and self._reopen:
+            # A checkpoint was written but its journal could not be opened (a full disk):
+            # open it now; until then nothing is appended anywhere.
+            self._journal = Journal.open(self.journal_path(self._generation), self._durability)
+            self._reopen = False
         if self._journal is None:
             raise StateError(
                 f"state store {self._dir}: {operation}() needs a successful recover() first "
@@ -226,8 +241,9 @@ class StateStore:
         # From here on the old journal must never be appended to: recovery would skip it.
         self._journal = None
         journal.close()
-        self._journal = Journal.open(self.journal_path(new), self._durability)
         self._generation = new
+        self._reopen = True
+        self._active("checkpoint")
         self._prune_journals()
         return new
 
