@@ -536,9 +536,12 @@ class Service:
             if self._stalled is not None:
                 self._retry_stalled(now)
                 self._stop.wait(0.05)
-            elif self.outbox.full() or (checkpoint_due and self.outbox.pending()):
+            elif (self.outbox.full() or (checkpoint_due and self.outbox.pending())) \
+                    and not self.inbox.full():
                 # Back-pressure: nothing more is taken in (so nothing more acknowledged) until
-                # the broker has taken values; the backlog waits at the broker.
+                # the broker has taken values; the backlog waits at the broker. A broker that
+                # sends past our Receive Maximum fills the inbox; then the network thread,
+                # which also reads the PUBACKs, would wait on it, so intake goes on.
                 if not checkpoint_due:
                     self.outbox.note_wait()
                 self.outbox.wait(0.05)
