@@ -267,7 +267,7 @@ class TestKillUnderLoad:
             started = time.monotonic()
             publisher.start()
             for _ in range(kills):
-                time.sleep(rng.uniform(0.2, 1.5))
+                time.sleep(rng.uniform(0.1, 0.8))
                 daemon.kill9()
                 daemon.start()
             publisher.join(180)
