@@ -155,6 +155,7 @@ class Service:
         self.outbox = Outbox(cfg.broker.publish_window)
         self.mark = OutboxMark(Path(cfg.state.dir))
         self._mark_at = 0.0
+        self._mark_failed = False
         # Storage faults: the batch that could not be made durable waits here, unacknowledged,
         # and is written again with backoff; nothing more is taken in meanwhile.
         self._stalled: Processed | None = None
@@ -419,7 +420,11 @@ class Service:
         try:
             self.mark.write(self.outbox.generation, self.outbox.done())
         except OSError as exc:  # only costs values published twice after a restart
-            log.warning("outbox_mark_not_written", path=str(self.mark.path), error=str(exc))
+            if not self._mark_failed:
+                log.warning("outbox_mark_not_written", path=str(self.mark.path), error=str(exc))
+            self._mark_failed = True
+        else:
+            self._mark_failed = False
 
     def publish_stats(self) -> None:
         """Retained per-daemon statistics beside the status topic."""

@@ -164,6 +164,7 @@ class StateStore:
             path = self.journal_path(generation)
             if generation not in journals:
                 if generation == newest:
+                    current = 0
                     continue  # a crash after checkpoint `newest`, before its journal existed
                 raise StateError(
                     f"journal {path} is missing but journals up to generation {newest} exist;"
