@@ -18,7 +18,7 @@ from typing import Any
 from trimtab.codec import JsonCodec, SenmlCodec
 from trimtab.config import Config, load_config
 from trimtab.messages import Reading, Reference
-from trimtab.outbox import MARK_NAME, Outbox, OutboxMark, PublishResult
+from trimtab.outbox import MARK_NAME, Mark, Outbox, OutboxMark, PublishResult
 from trimtab.wiring import make_codec, status_topic, topic_templates
 from trimtab_sim.broker import PrivateBroker
 from trimtab_sim.soak import Collector, Publisher, current_scale, record
@@ -143,14 +143,14 @@ class TestOutboxMark:
     def test_round_trip_and_damage(self, tmp_path: Path) -> None:
         """The mark reads back what was written; a damaged one reads as nothing done."""
         mark = OutboxMark(tmp_path)
-        assert mark.read() == (0, 0)
-        mark.write(4, 123)
-        mark.write(4, 9)  # rewritten in place, shorter
+        assert mark.read() == Mark()
+        mark.write(Mark(4, 123, 123456, 1000))
+        mark.write(Mark(4, 9, 77, 5))  # rewritten in place, shorter
         mark.close()
-        assert OutboxMark(tmp_path).read() == (4, 9)
+        assert OutboxMark(tmp_path).read() == Mark(4, 9, 77, 5)
         raw = (tmp_path / MARK_NAME).read_bytes()
         (tmp_path / MARK_NAME).write_bytes(raw.replace(b"9", b"8", 1))
-        assert OutboxMark(tmp_path).read() == (0, 0)
+        assert OutboxMark(tmp_path).read() == Mark()
 
 
 # -- real processes ---------------------------------------------------------------------------

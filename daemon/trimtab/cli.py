@@ -1,8 +1,8 @@
 """The ``trimtab`` command line: one sub-command a module under ``trimtab.commands``.
 
 Exit codes live here only: 0 success, 1 a runtime failure, 2 bad usage or bad input, 3 a
-runtime fault of the state directory (it cannot be created, locked, written or recovered:
-read-only, full at start, failing, or its state damaged beyond the previous checkpoint).
+runtime fault of the daemon's state directory (``trimtab run`` cannot create, lock, write or
+recover it: read-only, full at start, failing, or its state damaged beyond repair).
 """
 
 from __future__ import annotations
@@ -13,7 +13,7 @@ import importlib.util
 import sys
 from collections.abc import Sequence
 
-from trimtab.errors import ConfigError, StateError, TrimtabError
+from trimtab.errors import ConfigError, StateFault, TrimtabError
 from trimtab.logs import configure_logging
 
 EXIT_STATE = 3
@@ -69,7 +69,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         for line in exc.errors:
             print(f"trimtab {args.command}: {line}", file=sys.stderr)
         return 2
-    except StateError as exc:
+    except StateFault as exc:
         print(f"trimtab {args.command}: {exc}", file=sys.stderr)
         return EXIT_STATE
     except TrimtabError as exc:

@@ -39,7 +39,8 @@ from typing import Any
 
 from trimtab.logs import get_logger
 
-__all__ = ["MARK_NAME", "Outbox", "OutboxMark", "PublishResult", "record_key", "with_output"]
+__all__ = ["MARK_NAME", "Mark", "Outbox", "OutboxMark", "PublishResult", "record_key",
+           "stored_output", "with_output"]
 
 MARK_NAME = "outbox.mark"
 OUTPUT_FIELD = "out"
@@ -96,52 +97,67 @@ def stored_output(record: Mapping[str, Any]) -> bytes | None:
     return out.encode("utf-8") if isinstance(out, str) else None
 
 
-class OutboxMark:
-    """``outbox.mark``: how many values of which journal generation the broker has taken.
+@dataclass(frozen=True, slots=True)
+class Mark:
+    """What ``outbox.mark`` says: in journal ``generation``, the first ``done`` values were
+    delivered, and the journal had reached ``journal_bytes`` bytes and ``journal_records``
+    records (so a journal found shorter after a crash says exactly what is missing)."""
 
-    One fixed-length line, ``<generation> <done> <crc>``, rewritten in place (no fsync: a stale
-    or torn mark only makes the daemon publish again values already delivered, never fewer).
+    generation: int = 0
+    done: int = 0
+    journal_bytes: int = 0
+    journal_records: int = 0
+
+
+class OutboxMark:
+    """``outbox.mark``: the last :class:`Mark` written, one fixed-length line rewritten in place.
+
+    ``<generation> <done> <journal bytes> <journal records> <crc>``; no fsync: a stale or torn
+    mark only makes the daemon publish again values already delivered, never fewer.
     """
 
-    _WIDTH = 40
+    _WIDTH = 72
 
     def __init__(self, directory: Path) -> None:
         self.path = Path(directory) / MARK_NAME
         self._fd: int | None = None
-        self.written: tuple[int, int] | None = None
+        self.written: Mark | None = None
 
-    def read(self) -> tuple[int, int]:
-        """(generation, done); (0, 0) when the file is missing, torn or damaged (logged)."""
+    def read(self) -> Mark:
+        """The mark; all zeros when the file is missing, torn or damaged (logged)."""
         try:
             text = self.path.read_bytes().decode("ascii").strip()
         except FileNotFoundError:
-            return 0, 0
+            return Mark()
         except (OSError, UnicodeDecodeError) as exc:
             log.warning("outbox_mark_unreadable", path=str(self.path), error=str(exc))
-            return 0, 0
+            return Mark()
         parts = text.split()
         try:
-            generation, done, crc = int(parts[0]), int(parts[1]), int(parts[2], 16)
+            numbers = [int(x) for x in parts[:4]]
+            crc = int(parts[4], 16)
         except (IndexError, ValueError):
-            parts = []
-            generation = done = crc = -1
-        if not parts or zlib.crc32(b"%d %d" % (generation, done)) != crc or done < 0:
+            numbers, crc = [], -1
+        body = " ".join(str(n) for n in numbers).encode("ascii")
+        if len(numbers) != 4 or zlib.crc32(body) != crc or min(numbers) < 0:
             log.warning("outbox_mark_unreadable", path=str(self.path),
-                        error="not '<generation> <done> <crc>'; every value is published again")
-            return 0, 0
-        return generation, done
+                        error="not '<generation> <done> <bytes> <records> <crc>'; every value "
+                        "is published again")
+            return Mark()
+        return Mark(*numbers)
 
-    def write(self, generation: int, done: int) -> None:
-        """Record that the first ``done`` values of journal ``generation`` were delivered."""
-        if self.written == (generation, done):
+    def write(self, mark: Mark) -> None:
+        """Record ``mark`` (a no-op when it is the one last written)."""
+        if self.written == mark:
             return
-        body = b"%d %d" % (generation, done)
+        body = b"%d %d %d %d" % (mark.generation, mark.done, mark.journal_bytes,
+                                 mark.journal_records)
         line = b"%s %08x" % (body, zlib.crc32(body))
         line = line.ljust(self._WIDTH - 1) + b"\n"
         if self._fd is None:
             self._fd = os.open(self.path, os.O_WRONLY | os.O_CREAT | os.O_CLOEXEC, 0o600)
         os.pwrite(self._fd, line, 0)
-        self.written = (generation, done)
+        self.written = mark
 
     def close(self) -> None:
         if self._fd is not None:

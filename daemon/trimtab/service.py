@@ -16,7 +16,7 @@ import signal
 import threading
 import time
 from collections import Counter
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from types import FrameType
@@ -28,7 +28,7 @@ from trimtab.logs import configure_logging, get_logger
 from trimtab.messages import Corrected, Reading, Reference
 from trimtab.metrics import Metrics
 from trimtab.notify import Notifier
-from trimtab.outbox import Outbox, OutboxMark, PublishResult, stored_output, with_output
+from trimtab.outbox import Mark, Outbox, OutboxMark, PublishResult, stored_output, with_output
 from trimtab.records import event_to_record, record_to_event
 from trimtab.shards import HeldFile, SubscriptionLedger, plan_subscriptions, release
 from trimtab.statestore import StateStore
@@ -139,7 +139,8 @@ class Service:
         self.codec = make_codec(cfg)
         self.t_readings, self.t_references, self.t_corrected = topic_templates(cfg)
         self.engine: Engine = make_engine(cfg)
-        self.store = StateStore(Path(cfg.state.dir), durability=cfg.state.durability)
+        self.store = StateStore(Path(cfg.state.dir), durability=cfg.state.durability,
+                                validate=record_to_event)
         self.rejects = RejectLog()
         self.inbox: queue.Queue[Inbound] = queue.Queue(QUEUE_LIMIT)
         self.dropped = 0
@@ -156,6 +157,8 @@ class Service:
         self.mark = OutboxMark(Path(cfg.state.dir))
         self._mark_at = 0.0
         self._mark_failed = False
+        self._current_records = 0
+        self.journal_lost: dict[str, int] = {"bytes": 0, "records": 0}
         # Storage faults: the batch that could not be made durable waits here, unacknowledged,
         # and is written again with backoff; nothing more is taken in meanwhile.
         self._stalled: Processed | None = None
@@ -189,7 +192,10 @@ class Service:
 
     def recover(self) -> int:
         """Load the newest good checkpoint and re-feed the journal; returns records replayed."""
+        mark = self.mark.read()
         rec = self.store.recover()
+        self._current_records = rec.current
+        self._check_journal_length(mark, rec.current, rec.torn_bytes)
         if rec.state is not None:
             self.engine.load_state(rec.state)
         for record in rec.records:
@@ -206,14 +212,31 @@ class Service:
         current = rec.records[len(rec.records) - rec.current:]
         for record in rec.records[:len(rec.records) - rec.current]:
             self.outbox.remember(record)
-        queued = self.outbox.restore(self.store.generation, current, self.mark.read(),
-                                     self.t_corrected.format)
+        queued = self.outbox.restore(self.store.generation, current,
+                                     (mark.generation, mark.done), self.t_corrected.format)
         log.info("state_recovered", generation=rec.generation, journal_records=len(rec.records),
                  torn_bytes=rec.torn_bytes, sensors=len(self.engine.sensors()),
                  outputs_to_publish=queued)
         self._journal_records = len(rec.records)
         self._journal_since = time.monotonic() if rec.records else None
         return len(rec.records)
+
+    def _check_journal_length(self, mark: Mark, records: int, torn: int) -> None:
+        """Say exactly what is missing when the journal is shorter than the mark saw it."""
+        if mark.generation != self.store.generation:
+            return
+        size = self.store.journal_size
+        lost_bytes = max(0, mark.journal_bytes - size)
+        lost_records = max(0, mark.journal_records - records)
+        if not (lost_bytes or lost_records):
+            return
+        self.journal_lost = {"bytes": lost_bytes, "records": lost_records}
+        log.error("journal_data_lost", path=str(self.store.journal_path(mark.generation)),
+                  offset=size, bytes_lost=lost_bytes, records_lost=lost_records,
+                  torn_bytes_cut=torn,
+                  hint="the journal ends before what this daemon had written to it (cut or "
+                  "lost in a power failure); counted from the outbox mark, so at least this "
+                  "much is gone")
 
     def release_held(self) -> int:
         """Feed held events of sensors served now (their state imported) first; returns how many.
@@ -223,7 +246,11 @@ class Service:
         records = self.held.records()
         if not records:
             return 0
-        out = release(records, self.cfg, self.engine, self.store.append)
+        def journal(record: Mapping[str, Any]) -> None:
+            self.store.append(record)
+            self._current_records += 1
+
+        out = release(records, self.cfg, self.engine, journal)
         if out.fed:
             self.checkpoint()
         self.held.keep_only(out.keep)
@@ -317,6 +344,7 @@ class Service:
                 self.store.append_many(work.records)
                 work.journaled = True
                 self._journal_records += len(work.records)
+                self._current_records += len(work.records)
                 if self._journal_since is None:
                     self._journal_since = time.monotonic()
                 self._dirty = True
@@ -404,6 +432,7 @@ class Service:
             self._checkpoint_at = time.monotonic()
             return False
         self.outbox.reset(gen)
+        self._current_records = 0
         self._write_mark(force=True)
         self._dirty = False
         self._checkpoint_at = time.monotonic()
@@ -418,7 +447,8 @@ class Service:
             return
         self._mark_at = now
         try:
-            self.mark.write(self.outbox.generation, self.outbox.done())
+            self.mark.write(Mark(self.outbox.generation, self.outbox.done(),
+                                 self.store.journal_size, self._current_records))
         except OSError as exc:  # only costs values published twice after a restart
             if not self._mark_failed:
                 log.warning("outbox_mark_not_written", path=str(self.mark.path), error=str(exc))
@@ -439,6 +469,7 @@ class Service:
         stats["outbox"] = self.outbox.stats()
         stats["storage"] = {"pauses": self.storage_pauses, "paused": self._stalled is not None}
         stats["recovery_output_differs"] = self.recovery_differs
+        stats["journal_lost"] = dict(self.journal_lost)
         payload = json.dumps(stats, separators=(",", ":"), allow_nan=False).encode()
         self.transport.publish(status_topic(self.cfg) + "/stats", payload, qos=1, retain=True)
 

@@ -32,7 +32,7 @@ from __future__ import annotations
 import fcntl
 import os
 import re
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -74,10 +74,22 @@ class Recovery:
     current: int = 0
 
 
+def _check_shapes(path: Path, records: list[dict[str, Any]], offsets: list[int],
+                  validate: Callable[[Mapping[str, Any]], object]) -> None:
+    """``validate`` each record; its ``StateError`` gets the file and the record's offset."""
+    for index, (record, offset) in enumerate(zip(records, offsets, strict=True)):
+        try:
+            validate(record)
+        except StateError as exc:
+            raise StateError(f"journal {path}: record {index + 1} at byte offset {offset}: "
+                             f"{exc}") from exc
+
+
 class StateStore:
     """Durable engine state in one directory: ``recover`` once, then append and checkpoint."""
 
-    def __init__(self, directory: Path, *, durability: Durability = "fsync", keep: int = 2) -> None:
+    def __init__(self, directory: Path, *, durability: Durability = "fsync", keep: int = 2,
+                 validate: Callable[[Mapping[str, Any]], object] | None = None) -> None:
         if durability not in ("fsync", "flush"):
             raise ValueError(f"durability must be 'fsync' or 'flush', not {durability!r}")
         self._dir = Path(directory)
@@ -86,6 +98,7 @@ class StateStore:
         self._journal: Journal | None = None
         self._generation = 0
         self._reopen = False
+        self._validate = validate
         self._lock_fd: int | None = None
         if not self._dir.exists():
             try:
@@ -109,6 +122,11 @@ class StateStore:
     def generation(self) -> int:
         """The generation of the journal being appended to (the next checkpoint's minus one)."""
         return self._generation
+
+    @property
+    def journal_size(self) -> int:
+        """Bytes in the journal being appended to (0 when none is open)."""
+        return 0 if self._journal is None else self._journal.size
 
     def journal_path(self, generation: int) -> Path:
         """The journal file of ``generation``."""
@@ -171,7 +189,10 @@ class StateStore:
                     f" replaying from {'no checkpoint' if loaded is None else f'checkpoint {base}'}"
                     " would skip its events"
                 )
-            found, tail = read_journal(path)
+            offsets: list[int] = []
+            found, tail = read_journal(path, offsets)
+            if self._validate is not None:
+                _check_shapes(path, found, offsets, self._validate)
             if tail.torn_bytes and generation != newest:
                 raise StateError(
                     f"journal {path}: torn final line at byte offset {tail.good_bytes} "
