@@ -21,6 +21,7 @@ from trimtab.messages import Reading, Reference
 from trimtab.outbox import MARK_NAME, Mark, Outbox, OutboxMark, PublishResult
 from trimtab.wiring import make_codec, status_topic, topic_templates
 from trimtab_sim.broker import PrivateBroker
+from trimtab_sim.mqttio import play
 from trimtab_sim.soak import Collector, Publisher, current_scale, record
 
 from .support import (
@@ -293,3 +294,43 @@ class TestKillUnderLoad:
         record("kill -9 under load: missing", missing)
         record("kill -9 under load: different", different)
         record("kill -9 under load: delivered twice (at least once)", collector.duplicates)
+
+
+class TestJournalCut:
+    def test_journal_cut_in_half_reports_the_bytes_and_records_lost(
+            self, tmp_path: Path, broker: PrivateBroker) -> None:
+        """A journal cut in half while the daemon is down: file, offset, bytes, records named."""
+        cfg, daemon = _setup(tmp_path, broker, checkpoint_every=3600.0)
+        events = synthetic_stream(300)
+        watcher = Watcher(broker.port, status_topic(cfg))
+        state = Path(cfg.state.dir)
+        try:
+            daemon.start()
+            assert watcher.wait_online(), daemon.log()
+            play(events, cfg, host="127.0.0.1", port=broker.port)
+            assert watcher.wait_for(caught_up(events), timeout=60), daemon.log()
+            journal = max(state.glob("journal-*.log"))
+            deadline = time.monotonic() + 30
+            while OutboxMark(state).read().journal_bytes != journal.stat().st_size:
+                assert time.monotonic() < deadline, "the outbox mark never caught up"
+                time.sleep(0.05)
+            daemon.kill9()
+            data = journal.read_bytes()
+            cut = len(data) // 2
+            good_end = data.rfind(b"\n", 0, cut) + 1
+            journal.write_bytes(data[:cut])
+            daemon.start()
+            assert watcher.wait_online(), daemon.log()
+            assert daemon.terminate() == 0
+        finally:
+            daemon.kill9()
+            watcher.close()
+        lost = [x for x in _log_lines(daemon) if x.get("event") == "journal_data_lost"]
+        assert len(lost) == 1, daemon.log()[-3000:]
+        assert lost[0]["path"] == str(journal)
+        assert lost[0]["offset"] == good_end
+        assert lost[0]["bytes_lost"] == len(data) - good_end
+        assert lost[0]["records_lost"] == data.count(b"\n") - data[:good_end].count(b"\n")
+        assert lost[0]["torn_bytes_cut"] == cut - good_end
+        print(f"\njournal cut at {cut} of {len(data)} bytes: reported {lost[0]['bytes_lost']} "
+              f"bytes and {lost[0]['records_lost']} records lost from offset {good_end}")
