@@ -172,3 +172,19 @@ class TestReadOnly:
         assert len(lines) == 1, err
         assert lines[0].startswith("trimtab run: ") and str(mount_point) in lines[0]
         assert "Read-only file system" in lines[0]
+
+
+class TestUnitExitCodes:
+    def test_unit_restarts_on_state_faults_but_not_on_bad_config(self) -> None:
+        """The unit restarts after exit 3 (a state fault can clear) but not after exit 2."""
+        from trimtab.cli import EXIT_STATE
+
+        unit = Path(__file__).resolve().parents[1] / "config" / "trimtab.service"
+        settings: dict[str, str] = {}
+        for line in unit.read_text().splitlines():
+            if line and not line.startswith(("#", "[")):
+                key, _, value = line.partition("=")
+                settings[key] = value
+        assert settings["Restart"] == "on-failure"
+        assert settings["RestartPreventExitStatus"].split() == ["2"]
+        assert EXIT_STATE == 3 and str(EXIT_STATE) not in settings["RestartPreventExitStatus"]
