@@ -48,6 +48,10 @@ MARK_EVERY = 0.2
 """Seconds between writes of the outbox mark (what the broker has taken)."""
 STOP_DRAIN = 10.0
 """Seconds a stopping daemon waits for the broker to take the outbox's values."""
+PUBLISH_OUTCOMES = {"sent": "handed_to_client", "delivered": "delivered",
+                    "deferred": "publish_deferred", "failed": "publish_failed",
+                    "refused": "refused_by_broker"}
+"""Metrics outcome of ``trimtab_messages_published_total`` → outbox counter."""
 STORAGE_ERRNOS = frozenset({errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EIO, errno.EACCES,
                             errno.EPERM})
 """Errors of the state directory that pause the daemon (they can clear) instead of ending it."""
@@ -158,6 +162,7 @@ class Service:
         self._mark_at = 0.0
         self._mark_failed = False
         self._current_records = 0
+        self._published_seen: dict[str, int] = {}
         self.journal_lost: dict[str, int] = {"bytes": 0, "records": 0}
         # Storage faults: the batch that could not be made durable waits here, unacknowledged,
         # and is written again with backoff; nothing more is taken in meanwhile.
@@ -369,9 +374,20 @@ class Service:
         self.outbox.pump()
         if self.metrics is not None:
             now = time.monotonic()
-            self.metrics.batch(work.received, {"sent": len(work.outputs)},
+            self.metrics.batch(work.received, self._published_delta(),
                                (now - m.arrived for m in work.batch))
         return True
+
+    def _published_delta(self) -> dict[str, int]:
+        """What the outbox did since the last call, by metrics outcome."""
+        counts = self.outbox.stats()
+        delta: dict[str, int] = {}
+        for outcome, key in PUBLISH_OUTCOMES.items():
+            value = int(counts.get(key, 0))
+            if value != self._published_seen.get(outcome, 0):
+                delta[outcome] = value - self._published_seen.get(outcome, 0)
+                self._published_seen[outcome] = value
+        return delta
 
     # -- storage faults ------------------------------------------------------------------------
 
@@ -529,6 +545,9 @@ class Service:
         """Give the metrics endpoint a fresh snapshot (main thread)."""
         if self.metrics is None or self.transport is None:
             return
+        delta = self._published_delta()
+        if delta:
+            self.metrics.batch({}, delta, ())
         now = time.monotonic()
         self.metrics.refresh(
             self.engine, connected=self.transport.connected.is_set(),
