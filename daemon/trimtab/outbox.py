@@ -324,6 +324,11 @@ class Outbox:
         self._settle()
         return len(self._unsent) + len(self._inflight)
 
+    def waiting(self) -> list[tuple[str, bytes]]:
+        """(topic, payload) of every value not yet acknowledged, in flight ones first."""
+        self._settle()
+        return [(t, p) for _, t, p in [*self._inflight.values(), *self._unsent]]
+
     def wait(self, timeout: float) -> None:
         """Sleep until a PUBACK arrives or ``timeout`` passes, then publish what fits."""
         self._wake.wait(timeout)
