@@ -150,6 +150,7 @@ class Service:
         self.dropped = 0
         self.inbox_full = 0
         self.foreign = 0
+        self._inbox_logged: dict[str, float] = {}
         self.held = HeldFile(Path(cfg.state.dir), cfg.state.durability)
         self.metrics = (Metrics(cfg.metrics, pinned=cfg.sensors.ids)
                         if cfg.metrics.enabled else None)
@@ -187,11 +188,22 @@ class Service:
         except queue.Full:
             # Backpressure: the network thread waits, so TCP holds the backlog at the broker.
             self.inbox_full += 1
+            self._note_inbox("inbox_full_wait", self.inbox_full)
         try:
             self.inbox.put(item, timeout=1.0)
         except queue.Full:
             # Not acknowledged: a QoS 1 message comes again after the next reconnect.
             self.dropped += 1
+            self._note_inbox("inbox_full_dropped", self.dropped)
+
+    def _note_inbox(self, event: str, total: int) -> None:
+        """Log an inbox wait or drop at most every BURST_QUIET s (network thread; never raises)."""
+        now = time.monotonic()
+        if now - self._inbox_logged.get(event, -BURST_QUIET) >= BURST_QUIET:
+            self._inbox_logged[event] = now
+            log.warning(event, total=total, limit=QUEUE_LIMIT,
+                        hint="not acknowledged: delivered again after the next reconnect"
+                        if event == "inbox_full_dropped" else "the broker holds the backlog")
 
     # -- recovery ------------------------------------------------------------------------------
 
