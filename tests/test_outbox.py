@@ -204,7 +204,7 @@ class TestBacklog:
                                                         broker: PrivateBroker) -> None:
         """A backlog far beyond 65,535 published while the daemon is down: every value arrives."""
         readings = 100_000 if SCALE.name == "ci" else 200_000
-        events = synthetic_stream(readings // 2, sensors=("s1", "s2"))
+        events = synthetic_stream(readings // 2, sensors=("s1", "s2"), every=30)
         cfg, daemon = _setup(tmp_path, broker, checkpoint_every=5.0)
         codec = make_codec(cfg)
         collector = Collector(broker.port, "backlog-collector", "t/+/corrected", codec)
