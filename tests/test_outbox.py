@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import random
+import subprocess
 import threading
 import time
 from pathlib import Path
@@ -19,12 +20,14 @@ from trimtab.codec import JsonCodec, SenmlCodec
 from trimtab.config import Config, load_config
 from trimtab.messages import Reading, Reference
 from trimtab.outbox import MARK_NAME, Mark, Outbox, OutboxMark, PublishResult
+from trimtab.streamfile import decode_corrected_line, write_events
 from trimtab.wiring import make_codec, status_topic, topic_templates
 from trimtab_sim.broker import PrivateBroker
 from trimtab_sim.mqttio import play
 from trimtab_sim.soak import Collector, Publisher, current_scale, record
 
 from .support import (
+    BIN,
     Daemon,
     Watcher,
     assert_matches_replay,
@@ -182,12 +185,30 @@ def _publish_all(broker: PrivateBroker, cfg: Config, events: list[Reading | Refe
         pub.close()
 
 
-def _compare(cfg: Config, events: list[Reading | Reference],
-             collector: Collector) -> tuple[int, int, int]:
-    """(expected, missing, different): the collected values against an offline replay."""
+def _replayed(daemon: Daemon, events: list[Reading | Reference],
+              tmp_path: Path) -> dict[tuple[str, float], bytes]:
+    """What ``trimtab replay`` (a real process) writes for ``events``, keyed by (sensor, t).
+
+    Its lines are the daemon's published form, so they compare byte for byte.
+    """
+    stream, out = tmp_path / "replay-in.jsonl", tmp_path / "replay-out.jsonl"
+    write_events(stream, events)
+    done = subprocess.run([str(BIN / "trimtab"), "replay", "-c", str(daemon.config), str(stream),
+                           "-o", str(out), "--quiet"], capture_output=True, timeout=300,
+                          check=False)
+    assert done.returncode == 0, done.stderr.decode()
+    lines = out.read_text(encoding="utf-8").splitlines()
+    return {(c.sensor, c.t): line.encode("utf-8")
+            for line, c in ((x, decode_corrected_line(x)) for x in lines)}
+
+
+def _compare(cfg: Config, events: list[Reading | Reference], collector: Collector,
+             daemon: Daemon, tmp_path: Path) -> tuple[int, int, int]:
+    """(expected, missing, different): the collected values against ``trimtab replay``."""
     codec: JsonCodec | SenmlCodec = make_codec(cfg)
     _, outs = replay_engine(cfg, events)
-    expected = {(c.sensor, c.t): codec.encode_corrected(c) for c in outs}
+    expected = _replayed(daemon, events, tmp_path)
+    assert expected == {(c.sensor, c.t): codec.encode_corrected(c) for c in outs}
     got = dict(collector.unique)
     missing = sum(1 for k in expected if k not in got)
     different = sum(1 for k, v in expected.items() if k in got and got[k] != v)
@@ -226,7 +247,7 @@ class TestBacklog:
             daemon.kill9()
             watcher.close()
             collector.close()
-        expected, missing, different = _compare(cfg, events, collector)
+        expected, missing, different = _compare(cfg, events, collector, daemon, tmp_path)
         assert (expected, missing, different) == (readings, 0, 0)
         outbox = stats["outbox"]
         assert outbox.get("publish_failed", 0) == 0
@@ -282,7 +303,7 @@ class TestKillUnderLoad:
             daemon.kill9()
             watcher.close()
             collector.close()
-        expected, missing, different = _compare(cfg, events, collector)
+        expected, missing, different = _compare(cfg, events, collector, daemon, tmp_path)
         print(f"\nkill -9 under load: {kills} kills, {len(events)} messages in {seconds:.1f} s, "
               f"{expected} values expected, {missing} missing, {different} different, "
               f"{collector.duplicates} delivered twice")
