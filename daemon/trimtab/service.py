@@ -17,7 +17,7 @@ import threading
 import time
 from collections import Counter
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from types import FrameType
 from typing import TYPE_CHECKING, Any
@@ -75,9 +75,10 @@ class Processed:
     records: list[dict[str, Any]]
     outputs: list[tuple[str, bytes]]
     received: Counter[str]
+    held: list[dict[str, Any]] = field(default_factory=list)
     has_reference: bool = False
-    held: bool = False
     journaled: bool = False
+    held_written: bool = False
 
 
 @dataclass(frozen=True, slots=True)
@@ -327,8 +328,7 @@ class Service:
                 continue
             record = event_to_record(event)
             if hold:
-                self.held.append(record)
-                work.held = True
+                work.held.append(dict(record))
             if not serve:
                 received["held"] += 1
                 continue
@@ -357,6 +357,9 @@ class Service:
         """Make ``work`` durable, then acknowledge and publish it; False if storage failed."""
         assert self.transport is not None
         try:
+            if work.held and not work.held_written:
+                self.held.append_many(work.held)
+                work.held_written = True
             if work.records and not work.journaled:
                 self.store.append_many(work.records)
                 work.journaled = True
