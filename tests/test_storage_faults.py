@@ -188,3 +188,22 @@ class TestUnitExitCodes:
         assert settings["Restart"] == "on-failure"
         assert settings["RestartPreventExitStatus"].split() == ["2"]
         assert EXIT_STATE == 3 and str(EXIT_STATE) not in settings["RestartPreventExitStatus"]
+
+
+class TestStorageFaultKinds:
+    def test_only_errors_of_the_file_system_pause(self, tmp_path: Path) -> None:
+        """ENOSPC/EROFS/EIO behind a StateError pause; damaged state is no storage fault."""
+        from trimtab.errors import StateError
+        from trimtab.service import storage_fault
+
+        for code in (errno.ENOSPC, errno.EROFS, errno.EIO, errno.EDQUOT):
+            try:
+                try:
+                    raise OSError(code, os.strerror(code), str(tmp_path))
+                except OSError as exc:
+                    raise StateError("journal: cannot append") from exc
+            except StateError as wrapped:
+                fault = storage_fault(wrapped)
+                assert fault is not None and fault.errno == code
+        assert storage_fault(StateError("journal x: line 3: checksum mismatch")) is None
+        assert storage_fault(OSError(errno.ECONNREFUSED, "refused")) is None

@@ -176,10 +176,9 @@ class Outbox:
         self._keep = keep
         self._clock = clock
         self._publish: Publisher | None = None
-        # (seq or None, topic, payload): seq numbers journaled values of this generation;
-        # None marks a value that is not journaled (released held readings).
-        self._unsent: deque[tuple[int | None, str, bytes]] = deque()
-        self._inflight: dict[int, tuple[int | None, str, bytes]] = {}
+        # (seq, topic, payload): seq numbers the journaled values of this generation.
+        self._unsent: deque[tuple[int, str, bytes]] = deque()
+        self._inflight: dict[int, tuple[int, str, bytes]] = {}
         self._acks: deque[tuple[int, str | None]] = deque()
         self._wake = threading.Event()
         self._seen: OrderedDict[tuple[Any, ...], None] = OrderedDict()
@@ -249,12 +248,10 @@ class Outbox:
         while len(self._seen) > self._keep:
             self._seen.popitem(last=False)
 
-    def add(self, topic: str, payload: bytes, *, journaled: bool = True) -> None:
-        """Queue a value; a journaled one takes the next number of this generation."""
-        seq: int | None = None
-        if journaled:
-            seq = self._next_seq
-            self._next_seq += 1
+    def add(self, topic: str, payload: bytes) -> None:
+        """Queue a journaled value; it takes the next number of this generation."""
+        seq = self._next_seq
+        self._next_seq += 1
         self._unsent.append((seq, topic, payload))
         self.counts["queued"] += 1
 
@@ -281,9 +278,7 @@ class Outbox:
                 self.counts["delivered"] += 1
             self._finish(entry[0])
 
-    def _finish(self, seq: int | None) -> None:
-        if seq is None:
-            return
+    def _finish(self, seq: int) -> None:
         if seq == self._done:
             self._done += 1
             while self._done in self._done_ahead:

@@ -16,7 +16,7 @@ import signal
 import threading
 import time
 from collections import Counter
-from collections.abc import Callable, Mapping
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from types import FrameType
@@ -25,7 +25,7 @@ from typing import TYPE_CHECKING, Any
 from trimtab.engine import Engine
 from trimtab.errors import ConfigError, DecodeError, StateError
 from trimtab.logs import configure_logging, get_logger
-from trimtab.messages import Corrected, Reading, Reference
+from trimtab.messages import Reading, Reference
 from trimtab.metrics import Metrics
 from trimtab.notify import Notifier
 from trimtab.outbox import Mark, Outbox, OutboxMark, PublishResult, stored_output, with_output
@@ -158,7 +158,6 @@ class Service:
         self._checkpoint_at = time.monotonic()
         self._journal_since: float | None = None
         self._journal_records = 0
-        self._backlog: list[Corrected] = []
         self.outbox = Outbox(cfg.broker.publish_window)
         self.mark = OutboxMark(Path(cfg.state.dir))
         self._mark_at = 0.0
@@ -259,21 +258,35 @@ class Service:
     def release_held(self) -> int:
         """Feed held events of sensors served now (their state imported) first; returns how many.
 
-        See :func:`trimtab.shards.release`; their corrected values are published once connected.
+        See :func:`trimtab.shards.release`. The events fed are journaled, each reading with its
+        corrected value, and made durable before the held file lets go of them; the values go
+        to the outbox like any other.
         """
         records = self.held.records()
         if not records:
             return 0
-        def journal(record: Mapping[str, Any]) -> None:
-            self.store.append(record)
-            self._current_records += 1
-
-        out = release(records, self.cfg, self.engine, journal)
-        if out.fed:
-            self.checkpoint()
+        fed: list[dict[str, Any]] = []
+        out = release(records, self.cfg, self.engine, lambda r: fed.append(dict(r)))
+        made = {(c.sensor, c.t): c for c in out.corrected}
+        outputs: list[tuple[str, bytes]] = []
+        for record in fed:
+            c = made.pop((str(record["sensor"]), float(record["t"])), None) \
+                if "reading" in record else None
+            if c is not None:
+                payload = self.codec.encode_corrected(c)
+                with_output(record, payload)
+                outputs.append((self.t_corrected.format(c.sensor), payload))
+            self.outbox.remember(record)
+        if fed:
+            self.store.append_many(fed)
+            self.store.sync()
+            self._current_records += len(fed)
+            self._dirty = True
+            for topic, payload in outputs:
+                self.outbox.add(topic, payload)
         self.held.keep_only(out.keep)
-        self._backlog.extend(out.corrected)
-        log.info("held_events_released", fed=out.fed, still_held=len(out.keep))
+        log.info("held_events_released", fed=out.fed, still_held=len(out.keep),
+                 values=len(outputs))
         return out.fed
 
     # -- message handling ----------------------------------------------------------------------
@@ -586,10 +599,6 @@ class Service:
                                    self._enqueue, status_topic=status_topic(self.cfg),
                                    unsubscribe=stale, on_published=self.outbox.on_published)
         self.outbox.attach(self.outbox_publisher())
-        for c in self._backlog:  # corrected values of released held readings
-            self.outbox.add(self.t_corrected.format(c.sensor), self.codec.encode_corrected(c),
-                            journaled=False)
-        self._backlog = []
         self.transport.start()
         log.info("service_started", client_id=self.cfg.broker.client_id,
                  state_dir=str(self.cfg.state.dir), filters=len(wanted))
