@@ -389,7 +389,7 @@ class Service:
             fault = storage_fault(exc)
             if fault is None:
                 raise
-            self._stall(work, fault)
+            self._stall(work, fault, str(exc))
             return False
         if self._stalled is not None:
             self._resume()
@@ -419,7 +419,7 @@ class Service:
 
     # -- storage faults ------------------------------------------------------------------------
 
-    def _stall(self, work: Processed, fault: OSError) -> None:
+    def _stall(self, work: Processed, fault: OSError, detail: str) -> None:
         now = time.monotonic()
         if self._stalled is None:
             self.storage_pauses += 1
@@ -427,7 +427,7 @@ class Service:
             self._storage_backoff.reset()
             log.error("storage_unavailable", path=fault.filename or str(self.cfg.state.dir),
                       error=fault.strerror, errno=errno.errorcode.get(fault.errno or 0, "?"),
-                      waiting=len(work.batch),
+                      detail=detail[:300], waiting=len(work.batch),
                       hint="inputs are not acknowledged and wait at the broker; retrying")
         self._stalled = work
         self._retry_at = now + self._storage_backoff.next()
