@@ -113,6 +113,11 @@ class BrokerSettings(Section):
     session_expiry: Annotated[int, Strict(), Field(ge=1, le=4294967295)] = Field(
         default=86400, description="MQTT 5 session expiry interval in seconds (kept while away)"
     )
+    publish_window: Annotated[int, Strict(), Field(ge=1, le=32768)] = Field(
+        default=1000,
+        description="corrected values published but not yet acknowledged by the broker, at most"
+        " (input waits beyond it)",
+    )
     username: Str | None = Field(default=None, description="user name for the broker")
     password_env: (
         Annotated[str, Strict(), Field(pattern=r"^[A-Za-z_][A-Za-z0-9_]{0,127}$")] | None

@@ -143,6 +143,15 @@ class HeldFile:
         self._journal.append(record)
         self._note(record)
 
+    def append_many(self, records: list[dict[str, Any]]) -> None:
+        """Hold several events with one write: all of them or (on a storage fault) none."""
+        if self._journal is None:
+            self.open()
+        assert self._journal is not None
+        self._journal.append_many(records)
+        for record in records:
+            self._note(record)
+
     def sync(self) -> None:
         """Make what was held durable before it is acknowledged to the broker."""
         if self._journal is not None:

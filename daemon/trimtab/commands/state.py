@@ -38,7 +38,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     cfg = load_config(args.config)
     state_dir = Path(cfg.state.dir)
-    store = StateStore(state_dir, durability=cfg.state.durability)
+    store = StateStore(state_dir, durability=cfg.state.durability, validate=record_to_event)
     rec = store.recover()  # takes the directory's lock: refused while the daemon runs
     try:
         engine = make_engine(cfg)
