@@ -15,8 +15,8 @@ import scipy
 
 from trimtab.cli import main
 from trimtab.config import load_config
-from trimtab.messages import Reading
 from trimtab.errors import DataError
+from trimtab.messages import Reading
 from trimtab.model import RidgeModel
 from trimtab.modelfile import load_model_file, save_model_file
 from trimtab.terms import Scaler, TermSpec
