@@ -11,7 +11,7 @@ import pytest
 from trimtab.config import load_config
 from trimtab.errors import DecodeError
 from trimtab.messages import Reading
-from trimtab.service import Inbound, Service
+from trimtab.service import Inbound, Service, engine_refusals
 
 from .support import write_config
 
@@ -42,3 +42,13 @@ class TestTimeSanity:
             payload = json.dumps({"t": t, "raw": 40.0, "temp": 20.0}).encode()
             event, serve, _ = service.decode(Inbound("t/s1/raw", payload, 1, 1))
             assert isinstance(event, Reading) and serve
+
+
+class TestRefusalsAreLogged:
+    def test_only_refusals_and_guard_actions_that_grew_are_reported(self) -> None:
+        """Accepted readings and applied references are not refusals; gated ones are."""
+        before = {"reading_accepted": 5, "reference_gated": 1, "reference_applied": 3}
+        after = {"reading_accepted": 9, "reference_gated": 3, "reference_applied": 4,
+                 "reading_sensor_limit": 2, "reference_rate_limited": 0}
+        assert engine_refusals(before, after) == {"reading_sensor_limit": 2,
+                                                  "reference_gated": 2}

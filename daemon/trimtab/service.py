@@ -16,7 +16,7 @@ import signal
 import threading
 import time
 from collections import Counter
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from types import FrameType
@@ -118,6 +118,17 @@ class RejectLog:
             self._since.clear()
 
 
+ENGINE_KEPT = frozenset({"reading_accepted", "reference_applied", "reference_level_shift",
+                         "reference_pending", "scaler_moved"})
+"""Engine counters that are not a refusal, a drop or a guard's intervention."""
+
+
+def engine_refusals(before: Mapping[str, int], after: Mapping[str, int]) -> dict[str, int]:
+    """The engine's refusal and guard counters that grew between two readings of its counts."""
+    return {k: v - before.get(k, 0) for k, v in sorted(after.items())
+            if k not in ENGINE_KEPT and v > before.get(k, 0)}
+
+
 def endpoint_of(cfg: Config) -> Endpoint:
     """The transport endpoint the ``[broker]`` section describes."""
     b = cfg.broker
@@ -174,6 +185,7 @@ class Service:
         self._storage_backoff = Backoff(first=0.5, cap=30.0)
         self.storage_pauses = 0
         self.recovery_differs = 0
+        self._engine_logged: dict[str, int] = {}
         self._stop = threading.Event()
         self._reload = threading.Event()
         self._dirty = False
@@ -704,6 +716,12 @@ class Service:
             if now >= next_stats:
                 next_stats = now + self.cfg.status.interval
                 self.rejects.flush()
+                grown = engine_refusals(self._engine_logged, self.engine.counts)
+                if grown:
+                    # the engine is pure; its refusals and guard actions are logged here, once
+                    # per status interval, with what grew since the last line
+                    log.warning("engine_refusals", counts=grown)
+                    self._engine_logged = dict(self.engine.counts)
                 if self.transport.connected.is_set():
                     self.publish_stats()
             if wd_interval is not None and now >= next_watchdog and self.transport.alive():
