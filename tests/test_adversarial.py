@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 import random
+import tracemalloc
 from collections.abc import Callable
 
 import pytest
@@ -20,7 +21,7 @@ from trimtab.config import Config, parse_config
 from trimtab.engine import Engine
 from trimtab.errors import DecodeError
 from trimtab.messages import Corrected, Reading, Reference
-from trimtab_sim.soak import record
+from trimtab_sim.soak import current_scale, record
 
 GATE_RUN = 3
 T0 = 1_767_225_600.0
@@ -233,17 +234,32 @@ class TestFlood:
         record("flood: error of the next corrected value", round(abs(out.value - truth(601)), 3))
 
     def test_new_ids_past_sensors_max_get_no_state(self) -> None:
-        """With a pattern, ids past sensors.max are refused and counted; memory stays bounded."""
+        """With a pattern, ids past sensors.max are refused and counted; memory stays bounded.
+
+        CI: 2,000 made-up ids against sensors.max = 200; the soak's full scale: 100,000 against
+        the default 10,000. The memory the engine holds is measured (tracemalloc) per sensor.
+        """
+        full = current_scale().name == "full"
+        ids, limit = (100_000, 10_000) if full else (2_000, 200)
         engine = Engine(parse_config({
             "broker": {"client_id": "adversarial"},
-            "sensors": {"pattern": "s[0-9]+", "max": 50, "defaults": {
+            "sensors": {"pattern": "s[0-9]+", "max": limit, "defaults": {
                 "inputs": ["raw"], "centre": {"raw": 40.0}, "scale": {"raw": 10.0}}},
         }))
-        for k in range(200):
-            engine.process(Reading(T0 + k, f"s{k}", {"raw": 40.0}))
-            engine.on_reference(Reference(T0 + k, f"s{k}", 40.0))
-        assert len(engine.sensors()) == 50
-        assert engine.counts["reading_sensor_limit"] == 150
-        assert engine.counts["reference_sensor_limit"] == 150
-        assert engine.process(Reading(T0 + 500.0, "s7", {"raw": 41.0}))  # known ids still served
-        record("sensors.max 50: new ids refused", engine.counts["reading_sensor_limit"])
+        tracemalloc.start()
+        try:
+            before = tracemalloc.get_traced_memory()[0]
+            for k in range(ids):
+                engine.process(Reading(T0 + k, f"s{k}", {"raw": 40.0}))
+                engine.on_reference(Reference(T0 + k, f"s{k}", 40.0))
+            held = tracemalloc.get_traced_memory()[0] - before
+        finally:
+            tracemalloc.stop()
+        assert len(engine.sensors()) == limit
+        assert engine.counts["reading_sensor_limit"] == ids - limit
+        assert engine.counts["reference_sensor_limit"] == ids - limit
+        assert engine.process(Reading(T0 + ids, "s7", {"raw": 41.0}))  # known ids still served
+        per_sensor = held / limit
+        assert per_sensor < 20_000  # bytes: the bound is sensors.max × this
+        record("sensors.max: made-up ids / refused", ids, f"ids, {ids - limit} refused")
+        record("sensors.max: engine memory per sensor with state", round(per_sensor), "bytes")

@@ -113,3 +113,44 @@ class TestReloadOverTheBroker:
         assert model_states(recovered) == model_states(expected)
         served = recovered.model("s2")
         assert served is not None and served.updates > 0  # s2 was learnt from at once
+
+    def test_reload_removing_a_sensor_says_so_and_keeps_its_state(
+            self, tmp_path: Path, broker: PrivateBroker) -> None:
+        """Removing s2 logs it with its update count; its later messages are refused and
+        counted; its learnt state is kept (not served, not lost)."""
+        cfg_path = write_config(tmp_path / "d", broker.port)
+        cfg1 = load_config(cfg_path)
+        events = synthetic_stream(240)
+        half = len(events) // 2
+        before, after = events[:half], events[half:]
+        watcher = Watcher(broker.port, status_topic(cfg1))
+        daemon = Daemon(cfg_path, tmp_path / "daemon.log")
+        daemon.start()
+        try:
+            assert watcher.wait_online(), daemon.log()
+            play(before, cfg1, host="127.0.0.1", port=broker.port)
+            assert watcher.wait_for(caught_up(before)), daemon.log()
+            cfg_path.write_text(cfg_path.read_text().replace('ids = ["s1", "s2"]',
+                                                             'ids = ["s1"]'))
+            daemon.signal(signal.SIGHUP)
+            removed = _wait_log(daemon, "sensors_removed")
+            assert removed["sensors"] == ["s2"] and removed["state_kept"] is True
+            play(after, cfg1, host="127.0.0.1", port=broker.port)
+            s1_after = [e for e in after if e.sensor == "s1"]
+            assert watcher.wait_for(caught_up(s1_after)), daemon.log()
+            refused = sum(1 for e in after if e.sensor == "s2")
+            assert watcher.wait_for(
+                lambda w: w.stats is not None
+                and w.stats.get("rejected", {}).get("unknown_sensor") == refused), daemon.log()
+            assert daemon.terminate() == 0
+        finally:
+            daemon.kill9()
+            watcher.close()
+        expected = make_engine(cfg1)
+        for e in before:
+            expected.process(e)
+        kept = expected.model("s2")
+        assert kept is not None and removed["updates"] == {"s2": kept.updates}
+        recovered = recovered_engine(load_config(cfg_path))
+        back = recovered.model("s2")
+        assert back is not None and back.theta == kept.theta
