@@ -248,26 +248,30 @@ class TestPriorIsWhatTheOperatorSays:
                        f'[state]\ndir = "{tmp_path / "state"}"\n')
         return cfg, model
 
-    @pytest.mark.parametrize(("prior", "expected"), [
-        ("", [0.0, 0.0]),  # the file's (fit --prior zero)
-        ('prior = "zero"', [0.0, 0.0]),
-        ("prior = [9.0, 9.0]", [9.0, 9.0]),
-    ])
+    @pytest.mark.parametrize("prior", ["", 'prior = "initial"', 'prior = "zero"',
+                                       "prior = [9.0, 9.0]", 'prior = "factory"'])
     def test_the_model_pulls_toward_the_prior_the_config_gives(
-            self, tmp_path: Path, capsys: pytest.CaptureFixture[str], prior: str,
-            expected: list[float]) -> None:
-        """The engine's model takes the configured prior; check prints the effective one."""
-        cfg_path, _ = self._setup(tmp_path, prior)
+            self, tmp_path: Path, capsys: pytest.CaptureFixture[str], prior: str) -> None:
+        """The engine's model takes the configured prior (unset: the fitted weights the model
+        starts from); check prints the effective one."""
+        cfg_path, model_path = self._setup(tmp_path, prior)
         capsys.readouterr()
+        fitted, _ = load_model_file(model_path)
         engine = make_engine(load_config(cfg_path))
         engine.process(Reading(T0, "o3", {"raw": 80.0}))
         model = engine.model("o3")
-        assert model is not None and list(model.prior) == expected
+        assert model is not None
+        expected = {"": list(fitted.theta), 'prior = "initial"': list(fitted.theta),
+                    'prior = "zero"': [0.0, 0.0], "prior = [9.0, 9.0]": [9.0, 9.0],
+                    'prior = "factory"': [fitted.scaler.centre[0], fitted.scaler.scale[0]]}
+        assert list(model.prior) == expected[prior]
+        assert list(model.theta) == list(fitted.theta)  # the prior never moves the weights
         assert main(["check", str(cfg_path)]) == 0
         out = capsys.readouterr().out
-        shown = "configured weights" if prior.startswith("prior = [") else (
-            "zero (plain ridge)" if prior else f"the initial_state file {tmp_path / 'm.json'}")
-        assert f"prior: {shown}" in out
+        shown = {"": "initial: the fitted weights", 'prior = "initial"': "initial: the fitted",
+                 'prior = "zero"': "zero (plain ridge)", "prior = [9.0, 9.0]":
+                 "configured weights", 'prior = "factory"': "factory (corrected = raw)"}
+        assert f"prior: {shown[prior]}" in out
 
     def test_fit_takes_prior_weights(self, tmp_path: Path,
                                      capsys: pytest.CaptureFixture[str]) -> None:

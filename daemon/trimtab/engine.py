@@ -69,17 +69,21 @@ def band_step(k: _K, covered: Any, coverage: float, gain: float) -> _K:
     return np.maximum(0.0, k + gain * (miss - (1.0 - coverage)))  # type: ignore[return-value]
 
 
-def configured_prior(settings: SensorSettings, spec: TermSpec,
-                     scaler: Scaler) -> list[float] | None:
-    """The prior the config sets, in standardised units; None: the model's own (see below).
+def configured_prior(settings: SensorSettings, spec: TermSpec, scaler: Scaler,
+                     start: Sequence[float] | None = None) -> list[float] | None:
+    """The prior the online penalty pulls toward, in standardised units; None: the factory.
 
-    ``"factory"`` is ŷ = raw in the scaler's units, ``"zero"`` plain ridge, a list is taken as
-    given. Unset (None): a model from ``initial_state`` keeps its file's prior, and a model
-    the engine creates gets the factory calibration (:class:`RidgeModel`'s default).
+    ``"factory"`` is ŷ = raw in the scaler's units, ``"zero"`` plain ridge, ``"initial"`` the
+    weights the model starts from (``start``: an initial_state's fitted θ, so the penalty keeps
+    the model near the calibration it was given unless references say otherwise; a model the
+    engine creates starts at the factory calibration), a list is taken as given. Unset:
+    ``"initial"`` when there is an initial_state, else the factory calibration.
     """
     p = settings.prior
     if p is None:
-        return None
+        p = "initial" if settings.initial_state is not None else "factory"
+    if p == "initial":
+        return None if start is None else [float(v) for v in start]
     if p == "factory":
         return factory_prior(spec, scaler)
     if p == "zero":
@@ -274,9 +278,10 @@ class Engine:
             )
             if settings.initial_state is not None:
                 model = self._initial[str(settings.initial_state)]
-                prior = configured_prior(settings, model.spec, model.scaler)
+                prior = configured_prior(settings, model.spec, model.scaler, model.theta)
                 self._start(st, self._with_learning(
-                    model.copy() if prior is None else model.with_prior(prior)))
+                    model.with_prior(factory_prior(model.spec, model.scaler)
+                                     if prior is None else prior)))
                 st.warm = True
             self._sensors[sensor] = st
         return st

@@ -87,7 +87,7 @@ def _prior(value: Any, handler: ValidatorFunctionWrapHandler) -> Any:
         return handler(value)
     except ValidationError:
         raise PydanticCustomError(
-            "prior", 'must be "factory", "zero" or a list of numbers, intercept first'
+            "prior", 'must be "factory", "zero", "initial" or a list of numbers, intercept first'
         ) from None
 
 
@@ -105,7 +105,8 @@ SensorId = Annotated[
 InputName = Annotated[str, Strict(), AfterValidator(_input_name), Field(pattern=INPUT_NAME_PATTERN)]
 FieldName = Annotated[str, Strict(), Field(pattern=r"^[^\x00-\x1f]{1,64}$")]
 Prior = Annotated[
-    Literal["factory", "zero"] | tuple[Annotated[float, Strict()], ...], WrapValidator(_prior)
+    Literal["factory", "zero", "initial"] | tuple[Annotated[float, Strict()], ...],
+    WrapValidator(_prior),
 ]
 
 
@@ -125,8 +126,9 @@ _SETTINGS_DOC = {
     "products": 'pairs of inputs multiplied, e.g. [["raw", "temp"]]',
     "squares": "inputs squared",
     "elapsed": "add a drift term: days since the model's origin",
-    "prior": '"factory" (ŷ = raw), "zero" (plain ridge) or the k + 1 prior weights, intercept '
-             "first, standardised; unset: the initial_state file's prior, else factory",
+    "prior": '"factory" (ŷ = raw), "zero" (plain ridge), "initial" (the weights the model '
+             "starts from: an initial_state's fit) or the k + 1 weights, intercept first, "
+             'standardised; unset: "initial" with an initial_state, else "factory"',
     "penalise_intercept": "pull the intercept toward the prior too",
     "initial_state": "model-state file from `trimtab fit` to start from",
     "centre": "input → centre used to standardise it (with scale)",

@@ -10,8 +10,8 @@ is scored, whatever the schedule.
 
 The workflow, through the real command line: ``trimtab fit`` on the first 14 days (inputs raw,
 temp, rh, the square of raw, ``--prior zero``) → ``initial_state`` → ``trimtab tune`` on the
-first 90 days, scored against the references only (all an operator has: ``--against spans``
-counts each reference once per hour it stands for) → ``trimtab replay``
+first 90 days with its default search, scored against the references only (all an operator
+has: ``--against spans`` counts each reference once per hour it stands for) → ``trimtab replay``
 over the year with the recommended config.
 
 ``python -m trimtab_sim.realdata`` prints the table of the README's "On real data" section.
@@ -33,15 +33,7 @@ from typing import Any
 from trimtab_sim.baselines import baselines
 from trimtab_sim.uci import DAY, FIT_DAYS, SCHEDULES, SENSOR, TUNE_DAYS, Year, load_year
 
-__all__ = ["GRID", "Result", "grid_toml", "run_workflow", "table"]
-
-GRID = {
-    "alpha": [0.05, 0.1, 0.2, 0.5],
-    "alpha_max": [0.5, 1.0],
-    "lambda": [0.0, 1.0],
-}
-"""The tuner's grid for the real year (every combination; the tuner's own bounds follow α)."""
-
+__all__ = ["Result", "run_workflow", "table"]
 
 def write_stream(year: Year, schedule: str, path: Path, until: float | None = None) -> None:
     """The stream file of one schedule: every reading (with truth) and its hour's reference."""
@@ -83,12 +75,6 @@ def base_config(model_file: Path) -> str:
         "[output]\n"
         "stale_after = 1209600.0\n"
     )
-
-
-def grid_toml(grid: dict[str, list[float]] | None = None) -> str:
-    """The tuner's grid file."""
-    g = GRID if grid is None else grid
-    return "[grid]\n" + "".join(f"{k} = {json.dumps(v)}\n" for k, v in g.items())
 
 
 def _trimtab(*args: str) -> str:
@@ -147,11 +133,10 @@ def run_workflow(schedule: str, work: Path, year: Year | None = None,
     tune_stream, year_stream = work / f"{schedule}-90d.jsonl", work / f"{schedule}-year.jsonl"
     write_stream(year, schedule, tune_stream, until=year.t0 + TUNE_DAYS * DAY)
     write_stream(year, schedule, year_stream)
-    grid = work / "grid.toml"
-    grid.write_text(grid_toml(), encoding="utf-8")
     tuned = work / f"{schedule}-tuned.toml"
-    _trimtab("tune", "-c", str(cfg), str(tune_stream), "--grid", str(grid), "--split", "1",
-             "--against", "spans", "--config-out", str(tuned), "--quiet")
+    # tune's own default search (64 seeded candidates inside the config's bounds): no grid
+    _trimtab("tune", "-c", str(cfg), str(tune_stream), "--split", "1", "--against", "spans",
+             "--config-out", str(tuned), "--quiet")
     out = work / f"{schedule}-corrected.jsonl"
     state = work / f"{schedule}-state.json"
     _trimtab("replay", "-c", str(tuned), str(year_stream), "-o", str(out), "--state-out",

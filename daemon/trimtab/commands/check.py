@@ -97,30 +97,34 @@ def model_figures(cfg: Config, models: dict[str, RidgeModel]) -> dict[str, Any]:
         spec = spec_of(s)
         entry: dict[str, Any] = {"terms": list(spec.names()), "scaler_moves": moves}
         scaler: Scaler | None = None
-        file_prior: tuple[float, ...] | None = None
+        start: tuple[float, ...] | None = None
         if s.initial_state is not None:
             entry["scaler_from"] = f"initial_state {s.initial_state}"
             model = models.get(str(s.initial_state))
             if model is not None:
-                scaler, file_prior = model.scaler, model.prior
+                scaler, start = model.scaler, model.theta
         else:
             scaler = configured_scaler(spec, s, cfg)
             entry["scaler_from"] = ("configured centre and scale" if scaler is not None else
                                     f"the first {s.scaler_readings} readings")
         if scaler is not None:
             entry["centre"], entry["scale"] = list(scaler.centre), list(scaler.scale)
-        if scaler is not None:
-            prior = configured_prior(s, spec, scaler)
+        mode = s.prior if s.prior is not None else (
+            "initial" if s.initial_state is not None else "factory")
+        prior: list[float] | None
+        if isinstance(mode, tuple):
+            entry["prior_from"], prior = "configured weights", list(mode)
         else:
-            prior = list(s.prior) if isinstance(s.prior, tuple) else None
-        if s.prior is None and s.initial_state is not None:
-            entry["prior_from"] = f"the initial_state file {s.initial_state}"
-            prior = None if file_prior is None else list(file_prior)
-        else:
-            entry["prior_from"] = {None: "factory (corrected = raw)", "factory":
-                                   "factory (corrected = raw)", "zero": "zero (plain ridge)"
-                                   }.get(s.prior if isinstance(s.prior, str | None) else "",
-                                         "configured weights")
+            entry["prior_from"] = {
+                "factory": "factory (corrected = raw)", "zero": "zero (plain ridge)",
+                "initial": (f"initial: the fitted weights of {s.initial_state}"
+                            if s.initial_state is not None else
+                            "initial: the factory calibration the model starts from"),
+            }[mode]
+            if mode == "initial" and s.initial_state is not None:
+                prior = None if start is None else list(start)
+            else:
+                prior = None if scaler is None else configured_prior(s, spec, scaler, start)
         entry["prior"] = prior
         out[name] = entry
     return out
