@@ -330,7 +330,7 @@ class TestRefused:
                                                include_current=False)]
         assert not cand.valid
         path = _write_config(_merged(perturbed.base, settings), tmp_path / "bad.toml")
-        proc = _trimtab("check", "--no-files", str(path), cwd=tmp_path)
+        proc = _trimtab("check", "--no-files", "-c", str(path), cwd=tmp_path)
         assert proc.returncode == 2
         expected = [line.split(f"{path}: ", 1)[1] for line in proc.stderr.splitlines()]
         assert [why.split("candidate 0: ", 1)[1] for why in cand.refused] == expected
@@ -475,7 +475,7 @@ class TestTuneCommand:
         merged = _merged(perturbed.base, {k: chosen.get(k) for k in KEYS})
         path = _write_config(merged, tmp_path / "with-snippet.toml")
         for p in (path, tmp_path / "best.toml"):
-            check = _trimtab("check", "--no-files", str(p), cwd=tmp_path)
+            check = _trimtab("check", "--no-files", "-c", str(p), cwd=tmp_path)
             assert check.returncode == 0, check.stderr
         loaded = load_config(tmp_path / "best.toml").learning
         assert (loaded.alpha, loaded.lam) == (chosen["alpha"], chosen["lambda"])

@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import importlib.util
+import os
 import sys
 from collections.abc import Sequence
 
@@ -47,6 +48,17 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     except KeyboardInterrupt:
         return 130
+    except OSError as exc:
+        # a file the command named could not be opened or written: one line, the file named
+        where = exc.filename if exc.filename is not None else "a file"
+        print(f"trimtab-sim {args.command}: {where}: {exc.strerror or exc}", file=sys.stderr)
+        return 2
+    except Exception as exc:  # the last line of defence: no traceback reaches a user
+        if os.environ.get("TRIMTAB_TRACEBACK"):
+            raise
+        print(f"trimtab-sim {args.command}: internal error: {type(exc).__name__}: {exc} "
+              "(a bug; TRIMTAB_TRACEBACK=1 shows where)", file=sys.stderr)
+        return 1
     return code
 
 

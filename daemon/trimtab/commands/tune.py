@@ -22,6 +22,7 @@ from pathlib import Path
 from types import FrameType
 from typing import Any
 
+from trimtab.commands.replay import counted
 from trimtab.config import derived_figures, load_config
 from trimtab.errors import DataError
 from trimtab.tunegrid import (
@@ -251,6 +252,12 @@ def run(args: argparse.Namespace) -> int:
         if loud:
             print(f"tune: reading {args.stream}", file=sys.stderr)
         trace = record(cfg, args.stream, should_stop=stop, progress=show_read)
+        if trace.events == 0 and trace.complete:
+            if trace.rejected:
+                raise DataError(f"{args.stream}: no usable events: all "
+                                f"{sum(trace.rejected.values()):,} lines rejected "
+                                f"({counted(trace.rejected)})")
+            raise DataError(f"{args.stream}: no events (an empty stream file)")
         read_s = time.monotonic() - started
         stop.flag = False
         tuner = Tuner(trace, candidates, split=args.split, against=args.against)
@@ -264,7 +271,7 @@ def run(args: argparse.Namespace) -> int:
               f"in {elapsed - read_s:.2f} s ({k * trace.events / max(elapsed, 1e-9):,.0f} "
               "candidate-events/s overall)", file=sys.stderr)
         if trace.rejected:
-            print(f"tune: rejected lines {dict(trace.rejected)}", file=sys.stderr)
+            print(f"tune: rejected lines: {counted(trace.rejected)}", file=sys.stderr)
     best = result.best
     if best is not None and best.candidate.config is not None:
         if args.config_out is not None:

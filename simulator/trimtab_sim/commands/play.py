@@ -8,6 +8,7 @@ import time
 from pathlib import Path
 
 from trimtab.config import load_config
+from trimtab.errors import DataError
 from trimtab.streamfile import read_events
 from trimtab_sim.mqttio import play
 from trimtab_sim.progress import progress_line
@@ -29,6 +30,8 @@ def run(args: argparse.Namespace) -> int:
     host = args.host or cfg.broker.host
     port = args.port or cfg.broker.port
     events = list(read_events(args.stream))
+    if not events:
+        raise DataError(f"{args.stream}: no events (an empty stream file)")
     shown = progress_line("play:")
 
     def progress(n: int, _total: int) -> None:

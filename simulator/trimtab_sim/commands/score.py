@@ -8,6 +8,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from trimtab.errors import DataError
 from trimtab_sim.report import EPA_TARGETS, TargetCheck, check_targets, summary_table, write_report
 from trimtab_sim.scenario import load_scenario
 from trimtab_sim.score import DAY, Joined, Result, Settings, join, score, to_jsonable
@@ -86,8 +87,14 @@ def run(args: argparse.Namespace) -> int:
     from trimtab.streamfile import read_corrected, read_events
 
     settings, steps, targets = _settings(args)
-    joined: list[Joined] = join(read_events(args.stream), read_corrected(args.corrected))
-    res: Result = score(joined, settings, steps)
+    try:
+        joined: list[Joined] = join(read_events(args.stream), read_corrected(args.corrected))
+        res: Result = score(joined, settings, steps)
+    except DataError as exc:
+        text = str(exc)
+        if text.startswith((f"{args.stream}:", f"{args.corrected}:")):
+            raise  # already names its file and line
+        raise DataError(f"{args.stream} with {args.corrected}: {text}") from exc
     checks: list[TargetCheck] = (
         [check_targets(j, targets) for j in joined] if targets != "none" else []
     )
