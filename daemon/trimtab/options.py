@@ -3,9 +3,10 @@
 from __future__ import annotations
 
 import argparse
+import math
 import sys
 
-__all__ = ["DeprecatedFlag", "deprecated"]
+__all__ = ["DeprecatedFlag", "deprecated", "positive"]
 
 REMOVED_IN = "0.2"
 """The release in which the spellings deprecated in 0.1 stop working."""
@@ -26,3 +27,14 @@ class DeprecatedFlag(argparse.Action):
                  values: object, option_string: str | None = None) -> None:
         deprecated(f"{option_string}", str(self.const))
         setattr(namespace, self.dest, values)
+
+
+def positive(text: str) -> float:
+    """An argparse type: a finite number > 0 (``--speed``, ``--idle``, ``--timeout``)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not (math.isfinite(value) and value > 0.0):
+        raise argparse.ArgumentTypeError(f"{text} must be a finite number > 0")
+    return value

@@ -9,6 +9,7 @@ from pathlib import Path
 from typing import Any
 
 from trimtab.errors import DataError
+from trimtab.options import DeprecatedFlag
 from trimtab_sim.report import EPA_TARGETS, TargetCheck, check_targets, summary_table, write_report
 from trimtab_sim.scenario import load_scenario
 from trimtab_sim.score import DAY, Joined, Result, Settings, join, score, to_jsonable
@@ -18,9 +19,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     """Arguments of ``score``."""
     p.add_argument("stream", metavar="STREAM", help="the simulated stream (readings carry truth)")
     p.add_argument("corrected", metavar="CORRECTED", help="corrected values (JSON Lines)")
-    p.add_argument(
-        "-o", "--report-dir", metavar="DIR", help="write report.md, score.json and PNG figures here"
-    )
+    p.add_argument("-o", "--output", dest="report_dir", metavar="DIR",
+                   help="write report.md, score.json and PNG figures to this directory")
+    p.add_argument("--report-dir", dest="report_dir", action=DeprecatedFlag, const="--output",
+                   default=argparse.SUPPRESS, help=argparse.SUPPRESS)
     p.add_argument(
         "--json", action="store_true", help="print the figures as JSON instead of the table"
     )
