@@ -51,6 +51,8 @@ CASES: list[tuple[str, str, str, Argv]] = [
     ("fit DATA", "trimtab", ".csv", lambda f, d: ["fit", str(f), "-o", str(d / "m.json")]),
     ("fit DATA.jsonl", "trimtab", ".jsonl",
      lambda f, d: ["fit", str(f), "-o", str(d / "m.json")]),
+    ("convert DATA", "trimtab", ".csv",
+     lambda f, d: ["convert", str(f), "-o", str(d / "s.jsonl"), "--sensor", "a"]),
     ("replay STREAM", "trimtab", ".jsonl",
      lambda f, d: ["replay", "-c", str(DEMO_CONFIG), str(f), "-o", str(d / "o.jsonl")]),
     ("replay -c", "trimtab", ".toml",

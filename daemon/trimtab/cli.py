@@ -24,6 +24,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "replay": ("replay", "run the engine over a stream file, offline"),
     "state": ("state", "show, export or import a sensor's model state"),
     "tune": ("tune", "evaluate candidate learning settings on a recorded stream"),
+    "convert": ("convert", "turn an operator's CSV file into a stream file"),
 }
 
 
