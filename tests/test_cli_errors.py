@@ -11,9 +11,10 @@ from pathlib import Path
 import pytest
 
 from trimtab.cli import main as trimtab_main
+from trimtab.streamfile import write_events
 from trimtab_sim.cli import main as sim_main
 
-from .support import write_config
+from .support import synthetic_stream, write_config
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO_CONFIG = ROOT / "config" / "demo.toml"
@@ -129,3 +130,21 @@ class TestConsoleScripts:
         assert "Traceback" not in proc.stderr + proc.stdout
         last = proc.stderr.strip().splitlines()[-1]  # tune first says what it reads
         assert last == f"{argv[0]} {argv[1]}: {missing}: stream file not found"
+
+
+class TestClosedPipe:
+    def test_reader_going_away_is_no_error(self, tmp_path: Path) -> None:
+        """`trimtab replay … | head -1`: the closed pipe ends the command quietly, no traceback."""
+        conf = write_config(tmp_path / "conf", 1)
+        stream = tmp_path / "s.jsonl"
+        write_events(stream, synthetic_stream(3000))
+        proc = subprocess.Popen(
+            [str(Path(sys.executable).parent / "trimtab"), "replay", "-c", str(conf),
+             str(stream), "--quiet"], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+        assert proc.stdout is not None and proc.stderr is not None
+        assert proc.stdout.readline().startswith(b"{")
+        proc.stdout.close()
+        with proc.stderr:
+            err = proc.stderr.read().decode()
+        assert proc.wait(timeout=120) == 141
+        assert err == ""

@@ -78,6 +78,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     except KeyboardInterrupt:
         return 130
+    except BrokenPipeError:
+        # the reader of our output went away (`| head`): stop quietly, as shell tools do
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 141
     except OSError as exc:
         # a file the command named could not be opened or written: one line, the file named
         where = exc.filename if exc.filename is not None else "a file"
