@@ -520,11 +520,11 @@ class TestTuneCommand:
     def test_nothing_to_score_exits_one(self, tmp_path: Path) -> None:
         """A stream with nothing to score gives the table, no recommendation and status 1."""
         path = _write_config(_config_dict(tmp_path / "state"), tmp_path / "c.toml")
-        stream = tmp_path / "empty.jsonl"
-        stream.write_text("")
+        stream = tmp_path / "untrue.jsonl"  # readings without truth, and no reference
+        stream.write_text('{"t": 1767225600.0, "sensor": "s1", "reading": {"raw": 4.0}}\n')
         proc = _trimtab("tune", "-c", str(path), str(stream), "--search", "2", "--quiet",
                         cwd=tmp_path)
-        assert proc.returncode == 1
+        assert proc.returncode == 1, proc.stderr
         assert "no candidate could be scored" in proc.stdout and "[learning]" not in proc.stdout
 
     def test_ctrl_c_reports_results_so_far(self, perturbed: Run, tmp_path: Path) -> None:
