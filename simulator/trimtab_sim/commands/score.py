@@ -126,7 +126,8 @@ def run(args: argparse.Namespace) -> int:
             sources["scenario"] = str(args.scenario)
         if args.config:
             sources["config"] = str(args.config)
-        written = write_report(res, joined, checks, out, sources, trajectories)
+        unit = load_scenario(args.scenario).signal.unit if args.scenario else ""
+        written = write_report(res, joined, checks, out, sources, trajectories, unit=unit)
         (out / "score.json").write_text(
             json.dumps(doc, indent=2, ensure_ascii=False) + "\n", encoding="utf-8"
         )
