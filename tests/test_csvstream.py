@@ -8,8 +8,8 @@ import pandas as pd
 import pytest
 
 from trimtab.cli import main
-from trimtab.csvstream import CsvLayout, read_csv_events
-from trimtab.errors import DataError
+from trimtab.csvstream import CsvLayout, load_layout, read_csv_events
+from trimtab.errors import ConfigError, DataError
 from trimtab.messages import Reading, Reference
 from trimtab.streamfile import read_events
 
@@ -123,3 +123,33 @@ class TestConvertCommand:
         assert main(["convert", str(src), "-o", str(tmp_path / "o"), "--sensor", "a",
                      "--tz", "CEST"]) == 2
         assert "--tz 'CEST': not a known IANA time zone" in capsys.readouterr().err
+
+
+class TestLayoutFile:
+    def test_layout_file_gives_the_same_layout_as_the_options(self, tmp_path: Path) -> None:
+        """A [csv] table with the options' keys loads to the same CsvLayout."""
+        path = tmp_path / "l.toml"
+        path.write_text('[csv]\ntime = "Datum"\nsensor = "no2-07"\nreference = "Referenz"\n'
+                        'window = 1800\ntz = "Europe/Berlin"\ndecimal_comma = true\n'
+                        '[csv.inputs]\nraw = "NO2 WE"\ntemp = "T Luft"\n')
+        assert load_layout(path) == LAYOUT
+
+    def test_misspelt_key_is_named_with_a_suggestion(self, tmp_path: Path) -> None:
+        """An unknown key names the file and the path, with the closest allowed key."""
+        path = tmp_path / "l.toml"
+        path.write_text('[csv]\nsensor = "a"\nwindw = 60\n[csv.inputs]\nraw = "x"\n')
+        with pytest.raises(ConfigError) as info:
+            load_layout(path)
+        assert info.value.errors[0].startswith(
+            f"{path}: csv.windw: unknown key; did you mean 'window'?")
+
+    def test_layout_and_options_together_are_refused(
+        self, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+    ) -> None:
+        """`convert --layout L --tz Z` is refused: one place for the mapping."""
+        path = tmp_path / "l.toml"
+        path.write_text('[csv]\nsensor = "a"\n[csv.inputs]\nraw = "x"\n')
+        src = _write(tmp_path, "t,x\n1,2\n")
+        assert main(["convert", str(src), "--layout", str(path), "--tz", "UTC",
+                     "-o", str(tmp_path / "o")]) == 2
+        assert "not both (--tz given too)" in capsys.readouterr().err

@@ -259,7 +259,7 @@ class TestReport:
 
     def test_markdown_states_both_r2_definitions(self) -> None:
         """The report says which R² each table uses, so −1.45 and 0.958 are not a riddle."""
-        js, res = self._result()
+        _, res = self._result()
         md = report.markdown(res, [], {}, {}, None)
         assert "1 − Σ(value − truth)² / Σ(truth − mean truth)²" in md
         assert "the squared correlation" in md

@@ -17,13 +17,22 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
+from typing import Annotated
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
-from trimtab.errors import DataError, DecodeError
+from pydantic import BaseModel, ConfigDict, Field, ValidationError
+
+from trimtab.errors import ConfigError, DataError, DecodeError
 from trimtab.messages import Reading, Reference
+from trimtab.sensorconfig import dotted, expand_errors
+from trimtab.streamfile import write_events
+from trimtab.tomlfile import read_toml
 from trimtab.topics import validate_sensor_id
 
-__all__ = ["CsvLayout", "CsvResult", "describe_span", "local_zone", "read_csv_events"]
+__all__ = [
+    "CsvLayout", "CsvResult", "csv_as_stream", "describe_span", "load_layout", "local_zone",
+    "read_csv_events", "readable_stream",
+]
 
 DELIMITERS = ",;\t|"
 """What a delimiter may be when it is sniffed from the header line."""
@@ -59,6 +68,52 @@ class CsvResult:
     rows: int
     delimiter: str
     skipped: Counter[str] = field(default_factory=Counter)
+
+
+class _LayoutFile(BaseModel):
+    """The ``[csv]`` table of a layout file: the same keys as ``trimtab convert``'s options."""
+
+    model_config = ConfigDict(extra="forbid", strict=True)
+
+    inputs: dict[str, str] = Field(min_length=1)
+    time: str = "t"
+    sensor: str | None = None
+    sensor_column: str | None = None
+    reference: str | None = None
+    window: Annotated[float, Field(gt=0, allow_inf_nan=False)] | None = None
+    tz: str | None = None
+    time_format: str | None = None
+    delimiter: Annotated[str, Field(min_length=1, max_length=1)] | None = None
+    decimal_comma: bool = False
+
+
+class _Layout(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+    csv: _LayoutFile
+
+
+def load_layout(path: str | Path) -> CsvLayout:
+    """A CSV layout from a TOML file's ``[csv]`` table; ConfigError lines name file and key.
+
+    ``[csv.inputs]`` maps each stream input to its column, ``raw`` first::
+
+        [csv]
+        time = "Datum"
+        tz = "Europe/Berlin"
+        sensor = "no2-07"
+        [csv.inputs]
+        raw = "NO2 WE"
+        temp = "T Luft"
+    """
+    source = str(path)
+    data = read_toml(path, "layout file")
+    try:
+        table = _Layout.model_validate(data).csv
+    except ValidationError as exc:
+        lines = [f"{source}: {dotted(loc)}: {msg}" for loc, msg in expand_errors(exc, _Layout)]
+        raise ConfigError(f"{source}: {len(lines)} problem(s) in the layout", lines) from None
+    return CsvLayout(**table.model_dump())
 
 
 def local_zone(name: str) -> ZoneInfo:
@@ -217,3 +272,27 @@ def describe_span(result: CsvResult) -> str:
     first = datetime(1970, 1, 1, tzinfo=UTC) + timedelta(seconds=result.events[0].t)
     last = datetime(1970, 1, 1, tzinfo=UTC) + timedelta(seconds=result.events[-1].t)
     return f"{first:%Y-%m-%dT%H:%M:%SZ} to {last:%Y-%m-%dT%H:%M:%SZ}"
+
+
+def csv_as_stream(path: Path, layout: CsvLayout, directory: Path) -> Path:
+    """The events of a CSV file written as a stream file in ``directory`` (for commands that
+    read stream files by path); DataError if the file gives no event."""
+    result = read_csv_events(path, layout)
+    if not result.events:
+        raise DataError(f"{path}: no events ({sum(result.skipped.values())} rows without one)")
+    out = directory / (path.stem + ".jsonl")
+    write_events(out, result.events)
+    return out
+
+
+def readable_stream(path: Path, layout_file: Path | None, directory: Path) -> Path:
+    """The stream file a command reads: ``path`` itself, or a CSV file (``.csv``) converted
+    into ``directory`` with the layout in ``layout_file``."""
+    if path.suffix.lower() != ".csv":
+        if layout_file is not None:
+            raise DataError(f"--layout is for CSV files; {path} is read as a stream file")
+        return path
+    if layout_file is None:
+        raise DataError(f"{path}: a CSV file needs --layout LAYOUT.toml to say which column is "
+                        "what (or convert it first with trimtab convert)")
+    return csv_as_stream(path, load_layout(layout_file), directory)

@@ -11,7 +11,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from trimtab.csvstream import CsvLayout, describe_span, read_csv_events
+from trimtab.csvstream import CsvLayout, describe_span, load_layout, read_csv_events
 from trimtab.errors import DataError
 from trimtab.messages import Reference
 from trimtab.options import positive
@@ -23,13 +23,15 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("data", metavar="DATA.csv", help="the CSV file, with a header row")
     p.add_argument("-o", "--output", required=True, metavar="STREAM.jsonl",
                    help="the stream file to write (replaced)")
-    who = p.add_mutually_exclusive_group(required=True)
+    p.add_argument("--layout", type=Path, metavar="LAYOUT.toml",
+                   help="the column mapping as a TOML [csv] table instead of the options below")
+    who = p.add_mutually_exclusive_group()
     who.add_argument("--sensor", metavar="ID", help="the sensor every row belongs to")
     who.add_argument("--sensor-column", metavar="COL",
                      help="the column holding each row's sensor id")
-    p.add_argument("--inputs", default="raw", metavar="NAME=COL,…",
+    p.add_argument("--inputs", default=None, metavar="NAME=COL,…",
                    help="stream inputs and their columns, raw first (default: raw)")
-    p.add_argument("--time", default="t", metavar="COL",
+    p.add_argument("--time", default=None, metavar="COL",
                    help="the column of event times (default: t): epoch seconds, ISO 8601, or "
                         "local time with --tz")
     p.add_argument("--tz", metavar="ZONE",
@@ -65,19 +67,39 @@ def _inputs(text: str) -> dict[str, str]:
     return out
 
 
-def run(args: argparse.Namespace) -> int:
-    """Read, convert, write, and say what was written."""
+MAPPING = ("sensor", "sensor_column", "inputs", "time", "tz", "time_format", "reference",
+           "window", "delimiter")
+
+
+def layout_from(args: argparse.Namespace) -> CsvLayout:
+    """The CSV layout: from --layout, or from the mapping options (never both)."""
+    given = [f"--{k.replace('_', '-')}" for k in MAPPING if getattr(args, k) is not None]
+    if args.decimal_comma:
+        given.append("--decimal-comma")
+    if args.layout is not None:
+        if given:
+            raise DataError(f"give the column mapping in {args.layout} or as options, not "
+                            f"both ({', '.join(given)} given too)")
+        return load_layout(args.layout)
+    if args.sensor is None and args.sensor_column is None:
+        raise DataError("say whose rows these are: --sensor ID or --sensor-column COL "
+                        "(or give --layout)")
     delimiter = args.delimiter
     if delimiter is not None:
         delimiter = "\t" if delimiter in ("tab", "\\t") else delimiter
         if len(delimiter) != 1:
             raise DataError(f"--delimiter {args.delimiter!r}: give one character (or 'tab')")
-    layout = CsvLayout(
-        inputs=_inputs(args.inputs), time=args.time, sensor=args.sensor,
+    return CsvLayout(
+        inputs=_inputs(args.inputs or "raw"), time=args.time or "t", sensor=args.sensor,
         sensor_column=args.sensor_column, reference=args.reference, window=args.window,
         tz=args.tz, time_format=args.time_format, delimiter=delimiter,
         decimal_comma=args.decimal_comma,
     )
+
+
+def run(args: argparse.Namespace) -> int:
+    """Read, convert, write, and say what was written."""
+    layout = layout_from(args)
     source = Path(args.data)
     result = read_csv_events(source, layout)
     if not result.events:

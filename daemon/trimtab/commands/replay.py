@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+import tempfile
 import time
 from collections import Counter
 from collections.abc import Callable, Mapping
@@ -12,6 +13,7 @@ from pathlib import Path
 from typing import TextIO
 
 from trimtab.config import load_config
+from trimtab.csvstream import readable_stream
 from trimtab.engine import Engine
 from trimtab.errors import DataError, DecodeError
 from trimtab.messages import Reading
@@ -26,6 +28,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="corrected stream to write (default: standard output)")
     p.add_argument("--state-out", type=Path, default=None,
                    help="write the engine's final state (JSON) here")
+    p.add_argument("--layout", type=Path, default=None, metavar="LAYOUT.toml",
+                   help="read a CSV file (.csv) as the stream, with this column mapping "
+                        "(as trimtab convert --layout takes it)")
     p.add_argument("--quiet", action="store_true", help="no progress or summary on stderr")
     p.add_argument("--json", action="store_true",
                    help="write the summary to stderr as one JSON object instead of lines")
@@ -87,6 +92,14 @@ def counted(counts: Mapping[str, int]) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
+    """Run on the stream file, or on a CSV file converted for the run with --layout."""
+    with tempfile.TemporaryDirectory(prefix="trimtab-replay-") as tmp:
+        args.shown = args.stream
+        args.stream = readable_stream(args.stream, args.layout, Path(tmp))
+        return _run(args)
+
+
+def _run(args: argparse.Namespace) -> int:
     cfg = load_config(args.config)
     engine = make_engine(cfg)
     started = time.monotonic()
@@ -113,8 +126,8 @@ def run(args: argparse.Namespace) -> int:
         # nothing usable: a wrong or empty file must not look like a replay that went well
         lines = sum(rejected.values())
         if not lines:
-            raise DataError(f"{args.stream}: no events (an empty stream file)")
-        raise DataError(f"{args.stream}: no usable events: all {lines:,} lines rejected "
+            raise DataError(f"{args.shown}: no events (an empty stream file)")
+        raise DataError(f"{args.shown}: no usable events: all {lines:,} lines rejected "
                         f"({counted(rejected)}); first at {first[0]}")
     if args.state_out is not None:
         try:
@@ -123,15 +136,24 @@ def run(args: argparse.Namespace) -> int:
             raise DataError(f"{args.state_out}: cannot write ({exc.strerror})") from exc
     refs = {k.removeprefix("reference_"): v for k, v in sorted(engine.counts.items())
             if k.startswith("reference_")}
+    reads = {k.removeprefix("reading_"): v for k, v in sorted(engine.counts.items())
+             if k.startswith("reading_")}
+    if corrected == 0:
+        # events were read but none gave a corrected value: the stream does not fit the config
+        raise DataError(f"{args.shown}: no corrected values from {events:,} events (readings: "
+                        f"{counted(reads)}; references: {counted(refs)}); "
+                        f"check its sensors and inputs against {args.config}")
     if args.json:
-        summary = {"stream": str(args.stream), "events": events, "corrected": corrected,
+        summary = {"stream": str(args.shown), "events": events, "corrected": corrected,
                    "seconds": round(elapsed, 6), "references": refs,
+                   "readings": reads,
                    "rejected_lines": dict(sorted(rejected.items()))}
         print(json.dumps(summary), file=sys.stderr)
     elif not args.quiet:
         print(f"replay: {events:,} events, {corrected:,} corrected values in {elapsed:.2f} s "
               f"({events / max(elapsed, 1e-9):,.0f} events/s)", file=sys.stderr)
-        print(f"replay: references: {counted(refs)}", file=sys.stderr)
+        print(f"replay: readings: {counted(reads)}; references: {counted(refs)}",
+              file=sys.stderr)
         if rejected:
             print(f"replay: rejected lines: {counted(rejected)} (first at {first[0]})",
                   file=sys.stderr)

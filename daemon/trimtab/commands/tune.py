@@ -15,6 +15,7 @@ import json
 import math
 import signal
 import sys
+import tempfile
 import time
 import tomllib
 from datetime import UTC, datetime
@@ -24,6 +25,7 @@ from typing import Any
 
 from trimtab.commands.replay import counted
 from trimtab.config import derived_figures, load_config
+from trimtab.csvstream import readable_stream
 from trimtab.errors import DataError
 from trimtab.tunegrid import (
     TUNED,
@@ -62,6 +64,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="write the whole config with the recommended settings (as trimtab "
                         "check prints it)")
     p.add_argument("--json", action="store_true", help="print the results as one JSON object")
+    p.add_argument("--layout", type=Path, default=None, metavar="LAYOUT.toml",
+                   help="read a CSV file (.csv) as the stream, with this column mapping "
+                        "(as trimtab convert --layout takes it)")
     p.add_argument("--quiet", action="store_true", help="no progress or notes on stderr")
 
 
@@ -166,7 +171,7 @@ def _when(t: float | None) -> str:
 
 def _report(result: TuneResult, args: argparse.Namespace) -> list[str]:
     best = result.best
-    lines = [f"trimtab tune: {args.stream}, {result.events} events, {len(result.sensors)} "
+    lines = [f"trimtab tune: {args.shown}, {result.events} events, {len(result.sensors)} "
              f"sensor(s), scored against {result.against}"]
     if result.split_t is None:
         lines.append("split: none: every event is in the tune part")
@@ -223,6 +228,14 @@ def _as_json(result: TuneResult) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
+    """Run on the stream file, or on a CSV file converted for the run with --layout."""
+    with tempfile.TemporaryDirectory(prefix="trimtab-tune-") as tmp:
+        args.shown = args.stream
+        args.stream = readable_stream(args.stream, args.layout, Path(tmp))
+        return _run(args)
+
+
+def _run(args: argparse.Namespace) -> int:
     if not 0.0 < args.split <= 1.0:
         raise DataError(f"--split {args.split:g}: give a fraction of the stream's time span in "
                         "(0, 1]")
@@ -250,7 +263,7 @@ def run(args: argparse.Namespace) -> int:
 
     with _Interrupts() as stop:
         if loud:
-            print(f"tune: reading {args.stream}", file=sys.stderr)
+            print(f"tune: reading {args.shown}", file=sys.stderr)
         trace = record(cfg, args.stream, should_stop=stop, progress=show_read)
         if trace.events == 0 and trace.complete:
             if trace.rejected:
