@@ -24,6 +24,8 @@ from typing import Any
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from trimtab.commands.check import to_toml
 from trimtab.commands.replay import replay
@@ -31,17 +33,21 @@ from trimtab.config import Config, load_config, parse_config
 from trimtab.errors import ConfigError, DataError
 from trimtab.messages import Reading, Reference
 from trimtab.model import RidgeModel, dot
+from trimtab.stability import step_check
 from trimtab.streamfile import read_events, write_events
 from trimtab.terms import Scaler, TermSpec
 from trimtab.tunegrid import (
+    TUNED,
     Candidate,
     Value,
     build_candidates,
+    candidate_document,
+    current_settings,
     grid_settings,
     load_grid,
     search_settings,
 )
-from trimtab.tuner import Tuner, TuneResult
+from trimtab.tuner import Tuner, TuneResult, tune_stream
 from trimtab.tunetrace import Trace, record
 from trimtab.vengine import _seq_add, phi_rows
 from trimtab.wiring import make_engine
@@ -55,13 +61,13 @@ BIN = Path(sys.executable).parent
 # memories (two elapsed-term scales, so two feature groups), a tight and a loose gate.
 GRID: dict[str, list[Value]] = {
     "alpha": [0.002, 0.013], "lambda": [0.0, 5.0], "memory": [50, 400],
-    "huber_delta": [None, 3.0], "gate_k": [1.5, 12.0], "normalised": [True, False],
+    "huber_delta": [None, 3.0], "gate_k": [1.0, 12.0], "normalised": [True, False],
 }
 PICKS = [  # candidates replayed one by one (settings in TUNED order)
-    (0.013, 5.0, 50, None, 1.5, False),
+    (0.013, 5.0, 50, None, 1.0, False),
     (0.013, 0.0, 400, 3.0, 12.0, True),
     (0.002, 5.0, 400, None, 12.0, False),
-    (0.013, 5.0, 50, 3.0, 1.5, True),
+    (0.013, 5.0, 50, 3.0, 1.0, True),
 ]
 KEYS = ("alpha", "lambda", "memory", "huber_delta", "gate_k", "normalised")
 
@@ -175,7 +181,8 @@ class Run:
     result: TuneResult
 
     def index(self, settings: Mapping[str, Value]) -> int:
-        return next(c.index for c in self.candidates if dict(c.settings) == dict(settings))
+        return next(c.index for c in self.candidates
+                    if all(c.settings[k] == v for k, v in settings.items()))
 
 
 @pytest.fixture(scope="module")
@@ -183,7 +190,8 @@ def perturbed(tmp_path_factory: pytest.TempPathFactory) -> Run:
     """pm25-quay (two monitors, one shared reference) for 5 days, perturbed, tuned on GRID."""
     d = tmp_path_factory.mktemp("tune")
     stream = _perturb(_scenario_stream("pm25-quay", 5, d / "raw.jsonl", 3), d / "quay.jsonl")
-    base = _config_dict(d / "state", alpha=0.01, alpha_min=0.001, alpha_max=0.013)
+    base = _config_dict(d / "state", alpha=0.01, alpha_min=0.001, alpha_max=0.013,
+                        rollback_factor=2.0, alpha_recovery=0.2)
     cfg = parse_config(base)
     trace = record(cfg, stream)
     cands = build_candidates(base, cfg, grid_settings(cfg, GRID), label="grid")
@@ -238,7 +246,8 @@ class TestEqualsReplay:
         for values in PICKS:
             settings = _settings(values)
             i = perturbed.index(settings)
-            cfg = parse_config(_merged(perturbed.base, settings))
+            cfg = perturbed.candidates[i].config
+            assert cfg is not None
             state, out = _replay(cfg, perturbed.stream)
             assert json.loads(json.dumps(perturbed.tuner.engine_state(i))) == state
             o = by_index[i]
@@ -248,6 +257,35 @@ class TestEqualsReplay:
         for status in ("reference_gated", "reference_level_shift", "reference_rolled_back",
                        "reference_stuck", "reference_pending", "reference_applied"):
             assert status in seen, f"the picked candidates never reached {status}"
+
+    def test_drift_settings_equal_replay_state_and_score(self, perturbed: Run) -> None:
+        """Scaler modes, widths and spans, the gap lift, α recovery, the rollback factor and
+        the band: every combination ends with replay's state and score, over one record pass
+        per scaler group."""
+        cfg = parse_config(perturbed.base)
+        grid: dict[str, list[Value]] = {
+            "alpha": [0.013], "alpha_max": [0.013, 0.05], "gate_k": [1.0],
+            "step_adapt": ["gap", "none"], "step_gap": [3600.0],
+            "scaler": ["follow", "fixed"], "scaler_width": [1.0, 3.0],
+            "scaler_span": [86400.0, 2592000.0], "rollback_factor": [2.0, 8.0],
+            "alpha_recovery": [0.0, 0.5],
+        }
+        cands = build_candidates(perturbed.base, cfg, grid_settings(cfg, grid), label="grid",
+                                 include_current=False)
+        assert all(c.valid for c in cands)
+        run = tune_stream(perturbed.stream, cands, split=0.7)
+        assert len(run.tuners) == 5  # fixed, and follow at 2 widths × 2 spans
+        by_index = {o.candidate.index: o for o in run.result.outcomes}
+        seen: set[str] = set()
+        for cand in cands[::3]:
+            assert cand.config is not None
+            state, out = _replay(cand.config, perturbed.stream)
+            assert json.loads(json.dumps(run.engine_state(cand.index))) == state, cand.settings
+            o = by_index[cand.index]
+            got = [(o.tune.sse, o.tune.total, o.tune.n), (o.test.sse, o.test.total, o.test.n)]
+            assert got == _replay_scores(perturbed.stream, out, run.tuners[0].split_t)
+            seen |= {k for k, v in state["counts"].items() if v}
+        assert {"scaler_moved", "reference_rolled_back", "reference_level_shift"} <= seen
 
     def test_replay_command_gives_the_same_state(self, perturbed: Run, tmp_path: Path) -> None:
         """`trimtab replay --state-out` as a real process leaves the tuner's state, bit for bit."""
@@ -280,7 +318,8 @@ class TestEqualsReplay:
         """Against references with no test part, each sensor's sum is the engine's sq_preq."""
         tuner = Tuner(perturbed.trace, perturbed.candidates, split=1.0, against="references")
         result = tuner.run()
-        o = next(o for o in result.outcomes if o.candidate.settings == _settings(PICKS[1]))
+        pick = perturbed.index(_settings(PICKS[1]))
+        o = next(o for o in result.outcomes if o.candidate.index == pick)
         state = tuner.engine_state(o.candidate.index)
         for name, (tune, test) in o.per_sensor.items():
             d = state["sensors"][name]
@@ -305,35 +344,110 @@ class TestRefused:
     """Candidates the validator refuses are reported with its reasons and never evaluated."""
 
     def test_refused_are_not_evaluated_and_say_why(self, perturbed: Run) -> None:
-        """Out-of-bounds α is refused with the validator's line; only valid ones are advanced."""
+        """An unstable candidate is refused with the validator's line; only valid ones advance."""
         cfg = parse_config(perturbed.base)
-        grid: dict[str, list[Value]] = {"alpha": [0.005, 0.5], "memory": [0, 100]}
+        grid: dict[str, list[Value]] = {"alpha": [0.005, 0.5], "memory": [0, 1, 100],
+                                        "lambda": [5.0]}
         cands = build_candidates(perturbed.base, cfg, grid_settings(cfg, grid), label="grid")
         tuner = Tuner(perturbed.trace, cands)
         result = tuner.run()
         refused = {c.index for c in result.refused}
-        assert refused == {c.index for c in cands if c.settings["alpha"] == 0.5
-                           or c.settings["memory"] == 0}
+        assert refused == {c.index for c in cands if c.settings["memory"] == 0
+                           or (c.settings["alpha"] == 0.5 and c.settings["memory"] == 1)}
         assert not refused & {o.candidate.index for o in result.outcomes}
         for engines in tuner.engines.values():
             assert sum(len(ve) for ve, _ in engines) == len(result.outcomes)
         bad = next(c for c in result.refused
-                   if c.settings["alpha"] == 0.5 and c.settings["memory"] == 100)
-        assert any("learning.alpha: 0.5 is outside [alpha_min, alpha_max]" in why
+                   if c.settings["alpha"] == 0.5 and c.settings["memory"] == 1)
+        assert any("alpha_max·lambda_max/memory = 0.5·5/1 = 2.5 ≥ 1" in why
                    for why in bad.refused)
+
+    def test_a_candidate_is_checked_at_its_own_bounds(self, perturbed: Run) -> None:
+        """α above the config's alpha_max is not refused: the candidate's α is its own bound."""
+        cfg = parse_config(perturbed.base)
+        assert cfg.learning.alpha_max < 0.5
+        (cand,) = build_candidates(perturbed.base, cfg, grid_settings(cfg, {"alpha": [0.5]}),
+                                   label="grid", include_current=False)
+        assert cand.config is not None
+        assert cand.config.learning.alpha == cand.config.learning.alpha_max == 0.5
 
     def test_refusal_is_what_check_says(self, perturbed: Run, tmp_path: Path) -> None:
         """The reasons given are exactly `trimtab check`'s error lines for that config."""
         cfg = parse_config(perturbed.base)
-        settings = {**grid_settings(cfg, {"memory": [0], "alpha": [0.5]})[0]}
+        settings = {**grid_settings(cfg, {"memory": [1], "alpha": [0.5], "lambda": [5.0]})[0]}
         (cand,) = [c for c in build_candidates(perturbed.base, cfg, [settings], label="grid",
                                                include_current=False)]
         assert not cand.valid
-        path = _write_config(_merged(perturbed.base, settings), tmp_path / "bad.toml")
+        path = _write_config(candidate_document(perturbed.base, settings), tmp_path / "bad.toml")
         proc = _trimtab("check", "--no-files", "-c", str(path), cwd=tmp_path)
         assert proc.returncode == 2
         expected = [line.split(f"{path}: ", 1)[1] for line in proc.stderr.splitlines()]
         assert [why.split("candidate 0: ", 1)[1] for why in cand.refused] == expected
+
+
+class TestFolds:
+    """Rolling-origin folds of the tune part: their scores add up to the tune score."""
+
+    def test_folds_partition_the_tune_part(self, perturbed: Run) -> None:
+        """Fold counts add up to the tune count; one fold is the tune score bit for bit."""
+        for folds in (1, 4):
+            tuner = Tuner(perturbed.trace, perturbed.candidates, split=0.7, folds=folds)
+            result = tuner.run()
+            for o in result.outcomes[:5]:
+                assert len(o.folds) == folds
+                assert sum(f.n for f in o.folds) == o.tune.n
+                if folds == 1:
+                    assert o.folds[0].sse == o.tune.sse
+                else:
+                    assert math.isclose(sum(f.sse for f in o.folds), o.tune.sse, rel_tol=1e-9)
+
+    def test_the_report_says_the_lead_over_the_runner_up(self, perturbed: Run,
+                                                         tmp_path: Path) -> None:
+        """`trimtab tune` prints the folds' spread and how far rank 1 is ahead of rank 2."""
+        cfg_path, stream = _stream_copy(perturbed, tmp_path)
+        grid = tmp_path / "grid.toml"
+        grid.write_text("[grid]\nalpha = [0.002, 0.013]\nlambda = [0.0, 5.0]\n")
+        proc = _trimtab("tune", "-c", str(cfg_path), str(stream), "--grid", str(grid),
+                        "--folds", "4", "--json", cwd=tmp_path)
+        assert proc.returncode == 0, proc.stderr
+        doc = json.loads(proc.stdout)
+        ranked = doc["ranked"]
+        assert all(len(o["folds"]) == 4 for o in ranked)
+        lead = doc["lead"]
+        assert lead["runner_up"] == ranked[1]["candidate"] and lead["folds"] == 4
+        r1, r2 = ranked[0]["tune"]["rmse"], ranked[1]["tune"]["rmse"]
+        assert math.isclose(lead["ahead"], (r2 - r1) / r2)
+
+
+class TestOwnBounds:
+    """Every accepted candidate is stable at the bounds it actually uses."""
+
+    @settings(max_examples=80, deadline=None)
+    @given(alpha=st.floats(1e-3, 3.0), alpha_max=st.floats(1e-3, 3.0),
+           lam=st.floats(0.0, 50.0), memory=st.integers(1, 400),
+           adapt=st.sampled_from(["gap", "none"]), normalised=st.booleans())
+    def test_accepted_candidates_are_stable_at_their_own_bounds(
+            self, alpha: float, alpha_max: float, lam: float, memory: int, adapt: str,
+            normalised: bool) -> None:
+        """α ≤ alpha_max (= α without the gap lift), λ = lambda_max, and the proofs hold there."""
+        base = _config_dict(Path("/tmp/unused-state"))
+        cfg = parse_config(base)
+        settings_ = {**current_settings(cfg), "alpha": alpha, "alpha_max": alpha_max,
+                     "lambda": lam, "memory": memory, "step_adapt": adapt,
+                     "normalised": normalised}
+        (cand,) = build_candidates(base, cfg, [settings_], label="grid", include_current=False)
+        if cand.config is None:
+            return
+        lc = cand.config.learning
+        assert lc.alpha <= lc.alpha_max and lc.lam == lc.lambda_max
+        if adapt == "none":
+            assert lc.alpha_max == lc.alpha
+        assert lc.alpha_max * lc.lambda_max / lc.memory < 1.0
+        for label, group in cand.config.settings_groups().items():
+            check = step_check(label, terms=group.term_count(), alpha_max=lc.alpha_max,
+                               lambda_max=lc.lambda_max, memory=lc.memory,
+                               clip=lc.feature_clip, normalised=lc.normalised)
+            assert check.margin > 1.0
 
 
 class TestCandidates:
@@ -462,17 +576,18 @@ class TestTuneCommand:
         """Table, refused list, snippet, whole config and PNG; check accepts what it recommends."""
         cfg_path, stream = _stream_copy(perturbed, tmp_path)
         grid = tmp_path / "grid.toml"
-        grid.write_text("[grid]\nalpha = [0.002, 0.013, 0.5]\nlambda = [0.0, 5.0]\n")
+        grid.write_text("[grid]\nalpha = [0.002, 0.013, 0.5]\nlambda = [0.0, 5.0]\n"
+                        "memory = [1, 50]\n")
         proc = _trimtab("tune", "-c", str(cfg_path), str(stream), "--grid", str(grid),
                         "--plot", str(tmp_path / "p.png"), "--config-out",
                         str(tmp_path / "best.toml"), cwd=tmp_path)
         assert proc.returncode == 0, proc.stderr
         out = proc.stdout
         assert "rank" in out and "tune RMSE" in out and "test RMSE" in out
-        assert "refused by the config validator" in out and "0.5 is outside" in out
+        assert "refused by the config validator" in out and "0.5·5/1 = 2.5 ≥ 1" in out
         snippet = out.split("run trimtab check):\n", 1)[1]
         chosen = tomllib.loads(snippet)["learning"]
-        merged = _merged(perturbed.base, {k: chosen.get(k) for k in KEYS})
+        merged = candidate_document(perturbed.base, {k: chosen.get(k) for k in TUNED})
         path = _write_config(merged, tmp_path / "with-snippet.toml")
         for p in (path, tmp_path / "best.toml"):
             check = _trimtab("check", "--no-files", "-c", str(p), cwd=tmp_path)

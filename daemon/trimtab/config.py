@@ -271,7 +271,7 @@ class LearningSettings(Section):
     huber_delta: PosFloat | None = Field(
         default=None, description="Huber δ in output units; unset: squared"
     )
-    gate_k: PosFloat = Field(default=4.0, description="suspect beyond this many robust spreads")
+    gate_k: PosFloat = Field(default=5.0, description="suspect beyond this many robust spreads")
     gate_run: PosInt = Field(
         default=3, description="suspects in a row on one side accepted as a shift"
     )
@@ -282,7 +282,29 @@ class LearningSettings(Section):
         default=10, description="applied references between good snapshots"
     )
     rollback_factor: Annotated[float, Strict(), Field(gt=1)] = Field(
-        default=4.0, description="recent RMSE over snapshot RMSE that triggers a rollback"
+        default=4.0,
+        description="recent RMS error over the long-window robust error scale that rolls back",
+    )
+    error_window: PosInt = Field(
+        default=200, description="applied references the rollback's robust error scale spans"
+    )
+    alpha_recovery: Annotated[float, Strict(), Field(ge=0, le=1)] = Field(
+        default=0.1, description="after a good reference α moves this fraction back toward alpha"
+    )
+    step_adapt: Literal["gap", "none"] = Field(
+        default="gap", description="raise a reference's step toward alpha_max after a long gap"
+    )
+    step_gap: PosFloat = Field(
+        default=43200.0, description="s without a reference that lift the step halfway"
+    )
+    scaler: Literal["follow", "fixed"] = Field(
+        default="follow", description="centre and scale follow the operating range, or stay"
+    )
+    scaler_span: PosFloat = Field(
+        default=2592000.0, description="s; time constant of the followed operating range"
+    )
+    scaler_width: PosFloat = Field(
+        default=2.0, description="a followed scale is this many running standard deviations"
     )
     feature_clip: PosFloat = Field(default=6.0, description="standardised terms clipped to ±this")
     reference_interval: PosFloat = Field(
@@ -357,7 +379,12 @@ class PairingSettings(Section):
 class OutputSettings(Section):
     """What goes with each corrected value: band, cap and flags."""
 
-    band_k: PosFloat = Field(default=2.0, description="± band = band_k × running residual spread")
+    band_coverage: Annotated[float, Strict(), Field(gt=0, lt=1)] = Field(
+        default=0.9, description="share of references the ± band should cover (calibrated online)"
+    )
+    band_gain: Annotated[float, Strict(), Field(gt=0, le=1)] = Field(
+        default=0.05, description="step of the band's online calibration per reference"
+    )
     cap: PosFloat | None = Field(
         default=None, description="largest absolute change corrected − raw; unset: no cap"
     )

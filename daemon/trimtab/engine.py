@@ -17,19 +17,24 @@ import math
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any
+from statistics import NormalDist
+from typing import TYPE_CHECKING, Any, TypeVar
+
+import numpy as np
 
 from trimtab.errors import ModelError, StateError
-from trimtab.guards import Guard, GuardSettings
+from trimtab.guards import Guard, GuardSettings, gap_fraction, lifted
 from trimtab.messages import Corrected, Reading, Reference
-from trimtab.model import RidgeModel, shared
+from trimtab.model import RidgeModel, factory_prior, shared
 from trimtab.pairing import Paired, ReadingBuffer, pair
+from trimtab.ranges import RangeTracker, remap
 from trimtab.terms import Scaler, TermSpec
 
 if TYPE_CHECKING:
     from trimtab.config import Config, SensorSettings
 
-STATE_VERSION = 1
+STATE_VERSION = 2
+_K = TypeVar("_K", float, "np.ndarray[Any, np.dtype[np.float64]]")
 DAY = 86400.0
 _PART_KEY = json.JSONEncoder(sort_keys=True).encode
 PENDING_LIMIT = 256
@@ -45,6 +50,49 @@ class RefOutcome:
     sensor: str
     status: str
     residual: float | None = None
+
+
+def band_start(coverage: float) -> float:
+    """The band's first multiplier: the normal quantile for ``coverage`` (spread ≈ σ)."""
+    return NormalDist().inv_cdf(0.5 + coverage / 2.0)
+
+
+def band_step(k: _K, covered: Any, coverage: float, gain: float) -> _K:
+    """One online calibration step of the band multiplier after a scored reference.
+
+    The adaptive-conformal update (after Gibbs & Candès 2021, applied to a multiplier of the
+    running spread): k ← max(0, k + γ·(miss − (1 − coverage))). While k stays bounded, the
+    share of references outside the band tends to 1 − coverage, whatever the residuals'
+    distribution.
+    """
+    miss = np.where(covered, 0.0, 1.0)
+    return np.maximum(0.0, k + gain * (miss - (1.0 - coverage)))  # type: ignore[return-value]
+
+
+def configured_prior(settings: SensorSettings, spec: TermSpec,
+                     scaler: Scaler) -> list[float] | None:
+    """The prior the config sets, in standardised units; None: the model's own (see below).
+
+    ``"factory"`` is ŷ = raw in the scaler's units, ``"zero"`` plain ridge, a list is taken as
+    given. Unset (None): a model from ``initial_state`` keeps its file's prior, and a model
+    the engine creates gets the factory calibration (:class:`RidgeModel`'s default).
+    """
+    p = settings.prior
+    if p is None:
+        return None
+    if p == "factory":
+        return factory_prior(spec, scaler)
+    if p == "zero":
+        return [0.0] * (spec.n_terms + 1)
+    return [float(v) for v in p]
+
+
+def ranges_for(model: RidgeModel) -> RangeTracker:
+    """A range tracker starting at a model's scaler (the elapsed term stays fixed)."""
+    fixed = [False] * len(model.scaler)
+    if model.spec.elapsed:
+        fixed[-1] = True
+    return RangeTracker.start(model.scaler, fixed)
 
 
 def spec_of(settings: SensorSettings) -> TermSpec:
@@ -89,6 +137,9 @@ class SensorState:
     """Everything the engine keeps for one sensor."""
 
     __slots__ = (
+        "band_hit",
+        "band_k",
+        "band_n",
         "buffer",
         "guard",
         "last_applied_t",
@@ -97,6 +148,7 @@ class SensorState:
         "model",
         "n_preq",
         "pending",
+        "ranges",
         "scaler_rows",
         "settings",
         "spec",
@@ -119,6 +171,10 @@ class SensorState:
         self.sq_preq = 0.0
         self.n_preq = 0
         self.warm = False
+        self.ranges: RangeTracker | None = None
+        self.band_k = 0.0
+        self.band_hit = 0
+        self.band_n = 0
 
     def rmse(self) -> float | None:
         """Prequential RMSE over every paired reference (applied or gated)."""
@@ -146,7 +202,8 @@ class Engine:
         return GuardSettings(
             gate_k=lc.gate_k, gate_run=lc.gate_run, warmup=lc.warmup,
             snapshot_every=lc.snapshot_every, rollback_factor=lc.rollback_factor,
-            alpha=lc.alpha, alpha_min=lc.alpha_min,
+            alpha=lc.alpha, alpha_min=lc.alpha_min, error_window=lc.error_window,
+            alpha_recovery=lc.alpha_recovery,
         )
 
     @property
@@ -204,7 +261,10 @@ class Engine:
                 Guard(alpha=self._cfg.learning.alpha),
             )
             if settings.initial_state is not None:
-                st.model = self._with_learning(self._initial[str(settings.initial_state)].copy())
+                model = self._initial[str(settings.initial_state)]
+                prior = configured_prior(settings, model.spec, model.scaler)
+                self._start(st, self._with_learning(
+                    model.copy() if prior is None else model.with_prior(prior)))
                 st.warm = True
             self._sensors[sensor] = st
         return st
@@ -220,12 +280,18 @@ class Engine:
 
     def _new_model(self, st: SensorState, scaler: Scaler, origin: float) -> RidgeModel:
         lc = self._cfg.learning
-        prior = None if isinstance(st.settings.prior, str) else list(st.settings.prior)
+        prior = configured_prior(st.settings, st.spec, scaler)
         return RidgeModel(
             st.spec, scaler, origin=origin, lam=lc.lam, memory=lc.memory, prior=prior,
             penalise_intercept=st.settings.penalise_intercept, huber_delta=lc.huber_delta,
             normalised=lc.normalised, clip=lc.feature_clip,
         )
+
+    def _start(self, st: SensorState, model: RidgeModel) -> None:
+        """Give a sensor its model, a range tracker at its scaler, and a fresh band."""
+        st.model = model
+        st.ranges = ranges_for(model)
+        st.band_k = band_start(self._cfg.output.band_coverage)
 
     def _ensure_model(self, st: SensorState, reading: Reading) -> None:
         """Create the model when the scaler can be fixed (at once, or after N readings)."""
@@ -233,20 +299,18 @@ class Engine:
             return
         scaler = configured_scaler(st.spec, st.settings, self._cfg)
         if scaler is not None:
-            st.model = self._new_model(st, scaler, reading.t)
+            self._start(st, self._new_model(st, scaler, reading.t))
             return
         origin = st.scaler_rows[0][0] if st.scaler_rows else reading.t
         st.scaler_rows.append([reading.t, *st.spec.row(reading.inputs, reading.t, origin)])
         if len(st.scaler_rows) >= st.settings.scaler_readings:
-            import numpy as np
-
             terms = np.array([row[1:] for row in st.scaler_rows], dtype=float)
             scaler = Scaler.from_terms(terms)
             if st.spec.elapsed:
                 centre = (*scaler.centre[:-1], 0.0)
                 scale = (*scaler.scale[:-1], elapsed_scale_days(self._cfg))
                 scaler = Scaler(centre, scale)
-            st.model = self._new_model(st, scaler, origin)
+            self._start(st, self._new_model(st, scaler, origin))
             st.scaler_rows = []
             pending, st.pending = st.pending, []
             for values, t_pair, y, ref_t in pending:
@@ -298,6 +362,10 @@ class Engine:
             st.last_reading_t = r.t
             st.buffer.add(r.t, [float(v) for v in values])
             self._ensure_model(st, r)
+            if st.ranges is not None and st.model is not None and \
+                    self._cfg.learning.scaler == "follow":
+                st.ranges.observe(st.spec.row(inputs, r.t, st.model.origin), r.t,
+                                  self._cfg.learning.scaler_span)
             self.counts["reading_accepted"] += 1
         else:
             self.counts["reading_out_of_order"] += 1
@@ -328,7 +396,7 @@ class Engine:
         if oc.cap is not None and abs(value - raw) > oc.cap:
             value = raw + math.copysign(oc.cap, value - raw)
             flags.append("capped")
-        return Corrected(r.t, r.sensor, value, raw, model.band(oc.band_k), tuple(flags),
+        return Corrected(r.t, r.sensor, value, raw, model.band(st.band_k), tuple(flags),
                          model.updates)
 
     def on_reference(self, ref: Reference) -> list[RefOutcome]:
@@ -371,6 +439,9 @@ class Engine:
         """Gate one paired reference and apply it (or hold it as a suspect)."""
         model = st.model
         assert model is not None
+        lc = self._cfg.learning
+        if lc.scaler == "follow" and st.ranges is not None:
+            self._move_scaler(st, model, st.ranges.target(model.scaler, lc.scaler_width))
         inputs = dict(zip(st.spec.inputs, values, strict=True))
         phi, _ = model.phi(inputs, t_pair)
         residual = model.predict_phi(phi) - y
@@ -378,6 +449,14 @@ class Engine:
             return "non_finite", None
         st.sq_preq += residual * residual
         st.n_preq += 1
+        oc = self._cfg.output
+        covered = abs(residual) <= model.band(st.band_k)
+        st.band_hit += covered
+        st.band_n += 1
+        st.band_k = float(band_step(st.band_k, covered, oc.band_coverage, oc.band_gain))
+        lift = 0.0
+        if lc.step_adapt == "gap" and st.last_applied_t is not None:
+            lift = gap_fraction(ref_t - st.last_applied_t, lc.step_gap)
         verdict = st.guard.judge(residual, model.spread, self._gs)
         if verdict == "suspect":
             st.guard.hold(phi, y)
@@ -388,36 +467,54 @@ class Engine:
             # A new regime: restart the error baseline *before* learning it, or the shift's own
             # large residuals would trip the rollback and the model could never follow it.
             st.guard.restart_baseline(self._snapshot_of(model))
+            lift = 1.0  # the model is known to be off by the shift: learn it at alpha_max
             for held_phi, held_y in st.guard.take_suspects():
-                self._apply(st, held_phi, held_y)
-        status = self._apply(st, phi, y)
+                self._apply(st, held_phi, held_y, lift)
+        status = self._apply(st, phi, y, lift)
         if status == "applied":
             st.last_applied_t = ref_t
             if verdict == "shift":
                 status = "level_shift"
         return status, residual
 
-    def _apply(self, st: SensorState, phi: list[float], y: float) -> str:
+    def _move_scaler(self, st: SensorState, model: RidgeModel, target: Scaler) -> None:
+        """Move the model (and its last good snapshot) to ``target``, keeping every ŷ."""
+        old = model.scaler
+        if target is old or target == old:
+            return
+        try:
+            model.move_scaler(target)
+        except ModelError:
+            self.counts["scaler_move_refused"] += 1
+            return
+        self.counts["scaler_moved"] += 1
+        snap = st.guard.snapshot
+        if snap is not None:
+            moved = dict(snap)
+            moved["theta"] = remap(list(snap["theta"]), old, target)
+            moved["prior"] = list(model.prior)
+            moved["scaler"] = target.to_dict()
+            st.guard.snapshot = moved
+            self._share(moved)
+
+    def _apply(self, st: SensorState, phi: list[float], y: float, lift: float) -> str:
         """One guarded shrink-then-step update; returns the reference's status."""
         model = st.model
         assert model is not None
         before = self._snapshot_of(model) if st.guard.snapshot is None else None
         if before is not None:
             st.guard.take_snapshot(before)
-        saved = model.copy()
         try:
-            r = model.step_phi(phi, y, st.guard.alpha)
+            r = model.step_phi(phi, y, lifted(st.guard.alpha, self._cfg.learning.alpha_max,
+                                              lift))
         except ModelError:
-            return "non_finite"
-        if not all(math.isfinite(v) for v in model.theta):
-            st.model = saved
-            self._restore(st)
-            return "rolled_back"
+            return "non_finite"  # step_phi leaves the state untouched when it refuses
         st.guard.record(r, self._gs)
         st.guard.held = False
         if st.guard.exploded(self._gs):
             self._restore(st)
             return "rolled_back"
+        st.guard.recover(self._gs)
         if st.guard.due_snapshot(self._gs):
             st.guard.take_snapshot(self._snapshot_of(model))
         return "applied"
@@ -465,6 +562,8 @@ class Engine:
             "sq_preq": st.sq_preq,
             "n_preq": st.n_preq,
             "warm": st.warm,
+            "ranges": None if st.ranges is None else st.ranges.to_dict(),
+            "band": [st.band_k, st.band_hit, st.band_n],
         }
 
     def _load_sensor(self, name: str, d: Mapping[str, Any]) -> None:
@@ -486,6 +585,9 @@ class Engine:
         st.sq_preq = float(d["sq_preq"])
         st.n_preq = int(d["n_preq"])
         st.warm = bool(d["warm"])
+        st.ranges = None if d["ranges"] is None else RangeTracker.from_dict(d["ranges"])
+        band_k, band_hit, band_n = d["band"]
+        st.band_k, st.band_hit, st.band_n = float(band_k), int(band_hit), int(band_n)
 
     def state_dict(self) -> dict[str, Any]:
         """The whole state as plain JSON-able data; floats round-trip exactly."""
@@ -546,6 +648,8 @@ class Engine:
                 "alpha": st.guard.alpha,
                 "rollbacks": st.guard.rollbacks,
                 "held": st.guard.held,
+                "band_coverage": st.band_hit / st.band_n if st.band_n else None,
+                "scaler": None if st.model is None else st.model.scaler.to_dict(),
                 "ready": st.model is not None,
                 "last_reference_t": st.last_applied_t,
                 "last_reading_t": st.last_reading_t,

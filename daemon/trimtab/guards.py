@@ -3,24 +3,57 @@
 The config's bounds make divergence impossible in theory; these guards catch what gets past
 them in practice (a broken reference instrument, a sensor swapped without notice):
 
-* **gate** — a reference whose prequential residual exceeds ``gate_k`` robust spreads is held
-  as a *suspect* and not applied. ``gate_run`` suspects in a row on the same side are a real
+* **gate** — a reference whose prequential residual exceeds ``gate_k`` robust spreads (the
+  larger of the model's recent spread and the long-window scale σ_L below) is held as a
+  *suspect* and not applied. ``gate_run`` suspects in a row on the same side are a real
   level shift: they are all applied, in order, and the error baseline restarts. A run whose
   reference values are all one repeated number is a *stuck* instrument (a reference frozen
   at zero or at its last value), not a shift: it stays gated until a value differs.
 * **snapshot / rollback** — every ``snapshot_every`` applied references the model is copied as
-  the last good one, with the recent mean squared error at that time. When the recent error
-  (an exponentially weighted mean of squared prequential residuals) exceeds
-  ``rollback_factor²`` times the snapshot's, the model returns to the snapshot and α halves,
-  never below ``alpha_min``. A non-finite state after an update is rolled back the same way.
+  the last good one. The recent error (an exponentially weighted mean of squared prequential
+  residuals over about ``snapshot_every`` references) is compared with a robust long-window
+  error scale σ_L = √(π/2)·(exponentially weighted mean of |residual| over about
+  ``error_window`` references). When √recent > ``rollback_factor``·σ_L, with at least
+  ``snapshot_every`` references behind σ_L, the model returns to the snapshot and α halves,
+  never below ``alpha_min``. One calm night cannot set the threshold: σ_L spans weeks.
+* **gap lift** — with ``step_adapt = "gap"`` the step of a reference is α raised toward
+  ``alpha_max`` by :func:`gap_fraction` of the time since the last applied reference, so
+  sparse references (a collocation day a week) correct a week's drift quickly and a run of
+  hourly ones takes the configured α; the references of an accepted level shift are applied
+  at α_max. The step stays within [α, α_max], where the stability proof holds.
+* **recovery** — after each applied reference that is not rolled back, α moves the fraction
+  ``alpha_recovery`` of the way back to the configured α, so a rollback costs steps for a
+  while, not for good. α stays within [``alpha_min``, configured α] ⊆ [α_min, α_max].
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
-from typing import Any, Literal
+from typing import Any, Literal, TypeVar
+
+import numpy as np
 
 Verdict = Literal["apply", "suspect", "shift"]
+T = TypeVar("T", float, "np.ndarray[Any, np.dtype[np.float64]]")
+
+
+def gap_fraction(gap: T, span: T | float) -> T:
+    """How far a reference's step rises toward α_max after ``gap`` seconds without one.
+
+    ``gap / (gap + span)``: 0 right after a reference, ½ after ``span``, → 1 after a long gap.
+    A random-walk drift grows the model's uncertainty with elapsed time, so the first
+    reference after a long gap deserves the largest step (the Kalman filter's gain does the
+    same); consecutive references fall back to the configured α. Plain arithmetic, so floats
+    and arrays (the tuner's candidates) give the same bits.
+    """
+    return gap / (gap + span)
+
+
+def lifted(alpha: T, alpha_max: T | float, fraction: T | float) -> T:
+    """α raised the given fraction of the way to α_max: always inside [α, α_max]."""
+    return alpha + (alpha_max - alpha) * fraction
+SQRT_HALF_PI = math.sqrt(math.pi / 2.0)
 
 
 @dataclass(frozen=True, slots=True)
@@ -34,6 +67,8 @@ class GuardSettings:
     rollback_factor: float
     alpha: float
     alpha_min: float
+    error_window: int = 200
+    alpha_recovery: float = 0.0
 
 
 @dataclass(slots=True)
@@ -51,11 +86,16 @@ class Guard:
     held: bool = False
     rollbacks: int = 0
     fresh: bool = True
+    long_abs: float = 0.0
+    long_n: int = 0
 
     def judge(self, residual: float, spread: float, s: GuardSettings) -> Verdict:
         """Decide what to do with a paired reference whose prequential residual is given."""
         gate_active = self.applied >= s.warmup and spread > 0.0
-        if not gate_active or abs(residual) <= s.gate_k * spread:
+        # the larger of the recent spread and the long-window scale: a calm night's spread
+        # alone would gate the next ordinary rush hour
+        scale = max(spread, SQRT_HALF_PI * self.long_abs)
+        if not gate_active or abs(residual) <= s.gate_k * scale:
             self.run_sign = 0
             self.suspects.clear()
             return "apply"
@@ -87,14 +127,24 @@ class Guard:
         sq = residual * residual
         self.recent_ms = sq if self.fresh else (1.0 - w) * self.recent_ms + w * sq
         self.fresh = False
+        a = abs(residual)
+        wl = 2.0 / (s.error_window + 1.0)
+        self.long_abs = a if self.long_n == 0 else self.long_abs + wl * (a - self.long_abs)
+        self.long_n += 1
         self.applied += 1
         self.since_snapshot += 1
 
     def exploded(self, s: GuardSettings) -> bool:
-        """Whether the recent error has grown past the rollback threshold since the snapshot."""
-        if self.snapshot is None or self.snapshot_ms <= 0.0:
+        """Whether the recent error has grown past the rollback threshold (see the module)."""
+        if self.snapshot is None or self.long_n < s.snapshot_every or self.long_abs <= 0.0:
             return False
-        return self.recent_ms > (s.rollback_factor**2) * self.snapshot_ms
+        limit = s.rollback_factor * SQRT_HALF_PI * self.long_abs
+        return self.recent_ms > limit * limit
+
+    def recover(self, s: GuardSettings) -> None:
+        """After a good reference: α moves ``alpha_recovery`` of the way back to its setting."""
+        if self.alpha < s.alpha:
+            self.alpha = min(s.alpha, self.alpha + s.alpha_recovery * (s.alpha - self.alpha))
 
     def due_snapshot(self, s: GuardSettings) -> bool:
         """Whether enough references were applied since the last good snapshot."""
@@ -127,6 +177,8 @@ class Guard:
         self.snapshot_ms = 0.0
         self.since_snapshot = 0
         self.fresh = True
+        self.long_abs = 0.0
+        self.long_n = 0
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-able state (floats round-trip exactly through json)."""
@@ -142,6 +194,8 @@ class Guard:
             "held": self.held,
             "rollbacks": self.rollbacks,
             "fresh": self.fresh,
+            "long_abs": self.long_abs,
+            "long_n": self.long_n,
         }
 
     @classmethod
@@ -159,4 +213,6 @@ class Guard:
             held=bool(d["held"]),
             rollbacks=int(d["rollbacks"]),
             fresh=bool(d["fresh"]),
+            long_abs=float(d["long_abs"]),
+            long_n=int(d["long_n"]),
         )

@@ -15,6 +15,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from trimtab.errors import DataError, ModelError
+from trimtab.ranges import remap
 from trimtab.terms import Scaler, TermSpec, as_float, as_sequence, float_list
 
 _SQRT_HALF_PI = math.sqrt(math.pi / 2.0)
@@ -372,6 +373,31 @@ class RidgeModel:
         if not (math.isfinite(k) and k >= 0.0):
             raise ModelError(f"band multiplier k = {k} must be finite and ≥ 0")
         return k * self._spread
+
+    def with_prior(self, prior: Sequence[float]) -> RidgeModel:
+        """A copy whose penalty pulls toward ``prior`` (standardised units); θ is unchanged."""
+        d = self._state()
+        d["prior"] = as_sequence(prior, "prior")
+        return RidgeModel(self._spec, self._scaler, **d)
+
+    def move_scaler(self, new: Scaler) -> None:
+        """Standardise with ``new`` from now on; θ and the prior move so ŷ stays the same.
+
+        See :mod:`trimtab.ranges` for the map and what the penalty means after a move.
+        """
+        old = self._scaler
+        if new == old:
+            return
+        if len(new) != len(old):
+            raise ModelError(f"scaler has {len(new)} terms; the model has {len(old)}")
+        theta = remap(self._theta, old, new)
+        if not math.isfinite(sum(theta)):
+            raise ModelError("scaler move would make a weight non-finite; state left unchanged")
+        self._theta = theta
+        self._prior = tuple(remap(self._prior, old, new))
+        self._scaler = new
+        self._centre = new.centre
+        self._scale = new.scale
 
     def coefficients(self) -> dict[str, float]:
         """Weights in engineering units: ``offset``, then one per term (ŷ = offset + Σ c·term)."""

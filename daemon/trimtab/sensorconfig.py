@@ -87,7 +87,7 @@ def _prior(value: Any, handler: ValidatorFunctionWrapHandler) -> Any:
         return handler(value)
     except ValidationError:
         raise PydanticCustomError(
-            "prior", 'must be "factory" or a list of numbers, intercept first'
+            "prior", 'must be "factory", "zero" or a list of numbers, intercept first'
         ) from None
 
 
@@ -105,7 +105,7 @@ SensorId = Annotated[
 InputName = Annotated[str, Strict(), AfterValidator(_input_name), Field(pattern=INPUT_NAME_PATTERN)]
 FieldName = Annotated[str, Strict(), Field(pattern=r"^[^\x00-\x1f]{1,64}$")]
 Prior = Annotated[
-    Literal["factory"] | tuple[Annotated[float, Strict()], ...], WrapValidator(_prior)
+    Literal["factory", "zero"] | tuple[Annotated[float, Strict()], ...], WrapValidator(_prior)
 ]
 
 
@@ -118,7 +118,8 @@ _SETTINGS_DOC = {
     "products": 'pairs of inputs multiplied, e.g. [["raw", "temp"]]',
     "squares": "inputs squared",
     "elapsed": "add a drift term: days since the model's origin",
-    "prior": '"factory" (ŷ = raw) or the k + 1 prior weights, intercept first, standardised',
+    "prior": '"factory" (ŷ = raw), "zero" (plain ridge) or the k + 1 prior weights, intercept '
+             "first, standardised; unset: the initial_state file's prior, else factory",
     "penalise_intercept": "pull the intercept toward the prior too",
     "initial_state": "model-state file from `trimtab fit` to start from",
     "centre": "input → centre used to standardise it (with scale)",
@@ -136,7 +137,7 @@ class SensorSettings(Section):
     )
     squares: tuple[InputName, ...] = Field(default=(), description=_SETTINGS_DOC["squares"])
     elapsed: Bool = Field(default=False, description=_SETTINGS_DOC["elapsed"])
-    prior: Prior = Field(default="factory", description=_SETTINGS_DOC["prior"])
+    prior: Prior | None = Field(default=None, description=_SETTINGS_DOC["prior"])
     penalise_intercept: Bool = Field(default=False, description=_SETTINGS_DOC["penalise_intercept"])
     initial_state: Str | None = Field(default=None, description=_SETTINGS_DOC["initial_state"])
     centre: dict[InputName, Annotated[float, Strict()]] | None = Field(
@@ -185,7 +186,7 @@ def _settings_problems(s: SensorSettings) -> Problems:
     for i, x in enumerate(s.squares):
         if x not in known:
             p.append((("squares", i), f"{x!r} is not one of inputs {list(s.inputs)}"))
-    if not isinstance(s.prior, str) and len(s.prior) != s.term_count() + 1:
+    if isinstance(s.prior, tuple) and len(s.prior) != s.term_count() + 1:
         p.append(
             (
                 ("prior",),

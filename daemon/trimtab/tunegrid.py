@@ -1,8 +1,13 @@
 """Candidate learning settings for ``trimtab tune``: a grid file, a seeded search, the validator.
 
-A candidate sets some of the six tuned keys of ``[learning]`` — ``alpha``, ``lambda``,
-``memory``, ``huber_delta``, ``gate_k``, ``normalised`` — and takes every other key from the
-config being tuned. Each candidate is merged into the config's own TOML document and run
+A candidate sets some of the tuned keys of ``[learning]`` — ``alpha``, ``lambda``,
+``memory``, ``huber_delta``, ``gate_k``, ``normalised``, the scaler's ``scaler``,
+``scaler_width`` and ``scaler_span``, and the guards' ``rollback_factor`` and
+``alpha_recovery`` — and takes every other key from the config being tuned. A candidate is
+checked for stability at its own bounds: its λ is its ``lambda_max``; its α is its
+``alpha_max`` unless the gap lift is on (``step_adapt = "gap"``), when ``alpha_max`` is at
+least α; ``alpha_min`` is lowered to α when needed. A candidate is never refused because of a
+bound it does not use. Each candidate is merged into the config's own TOML document and run
 through :func:`trimtab.config.parse_config`, so it is refused for exactly the reasons
 ``trimtab check`` would give; a refused candidate is reported with those reasons and never
 evaluated.
@@ -16,6 +21,11 @@ Grid file (TOML, one table; every key optional, each a non-empty list)::
     huber_delta = ["none", 2.0]      # "none": the squared loss (the key left unset)
     gate_k = [3.0, 4.0]
     normalised = [true, false]
+    scaler = ["follow", "fixed"]
+    scaler_width = [2.0, 3.0, 4.0]
+    scaler_span = [604800.0, 2592000.0]
+    rollback_factor = [3.0, 4.0]
+    alpha_recovery = [0.0, 0.1]
 
 The candidates are every combination, in the order of the keys above, the last varying
 fastest.
@@ -33,7 +43,7 @@ from typing import Any
 
 import numpy as np
 
-from trimtab.config import Config, parse_config
+from trimtab.config import Config, LearningSettings, parse_config
 from trimtab.errors import ConfigError, DataError
 from trimtab.tomlfile import read_toml
 
@@ -49,13 +59,17 @@ __all__ = [
     "search_settings",
 ]
 
-TUNED = ("alpha", "lambda", "memory", "huber_delta", "gate_k", "normalised")
+TUNED = ("alpha", "alpha_max", "lambda", "memory", "huber_delta", "gate_k", "normalised",
+         "step_adapt", "step_gap", "scaler", "scaler_width", "scaler_span", "rollback_factor",
+         "alpha_recovery")
 """The ``[learning]`` keys a candidate may set, as the config file spells them."""
 
 MAX_CANDIDATES = 10000
 
-Value = float | int | bool | None
-_NUMBER_KEYS = ("alpha", "lambda", "gate_k")
+Value = float | int | bool | str | None
+_NUMBER_KEYS = ("alpha", "alpha_max", "lambda", "gate_k", "step_gap", "scaler_width",
+                "scaler_span", "rollback_factor", "alpha_recovery")
+_CHOICES = {"scaler": ("follow", "fixed"), "step_adapt": ("gap", "none")}
 
 
 @dataclass(frozen=True, slots=True)
@@ -78,8 +92,11 @@ class Candidate:
 def current_settings(cfg: Config) -> dict[str, Value]:
     """The tuned keys' values in a config."""
     lc = cfg.learning
-    return {"alpha": lc.alpha, "lambda": lc.lam, "memory": lc.memory,
-            "huber_delta": lc.huber_delta, "gate_k": lc.gate_k, "normalised": lc.normalised}
+    return {"alpha": lc.alpha, "alpha_max": lc.alpha_max, "lambda": lc.lam, "memory": lc.memory,
+            "huber_delta": lc.huber_delta, "gate_k": lc.gate_k, "normalised": lc.normalised,
+            "step_adapt": lc.step_adapt, "step_gap": lc.step_gap, "scaler": lc.scaler,
+            "scaler_width": lc.scaler_width, "scaler_span": lc.scaler_span,
+            "rollback_factor": lc.rollback_factor, "alpha_recovery": lc.alpha_recovery}
 
 
 def _is_number(v: object) -> bool:
@@ -95,6 +112,11 @@ def _check_value(key: str, v: object, where: str) -> Value:
         if isinstance(v, bool) or not isinstance(v, int):
             raise DataError(f"{where}: expected an integer count of references, got {v!r}")
         return v
+    if key in _CHOICES:
+        if v not in _CHOICES[key]:
+            raise DataError(f"{where}: expected one of {', '.join(map(repr, _CHOICES[key]))}, "
+                            f"got {v!r}")
+        return str(v)
     if key == "huber_delta":
         if v == "none":
             return None
@@ -183,7 +205,7 @@ def search_settings(cfg: Config, n: int, seed: int) -> list[dict[str, Value]]:
     return out
 
 
-def _merged(raw: Mapping[str, Any], settings: Mapping[str, Value]) -> dict[str, Any]:
+def candidate_document(raw: Mapping[str, Any], settings: Mapping[str, Value]) -> dict[str, Any]:
     data = copy.deepcopy(dict(raw))
     learning = data.get("learning")
     if not isinstance(learning, dict):
@@ -193,6 +215,26 @@ def _merged(raw: Mapping[str, Any], settings: Mapping[str, Value]) -> dict[str, 
             learning.pop(key, None)
         else:
             learning[key] = value
+    # Each candidate's own bounds: its stability is proved at the largest α and λ it uses.
+    # λ is fixed at run time, so λ is its own λ_max; α reaches α_max only through the gap lift,
+    # so without the lift α is its own α_max, and with it α_max is at least α.
+    fields = LearningSettings.model_fields
+
+    def num(key: str) -> float | None:
+        v = learning.get(key, fields["lam" if key == "lambda" else key].default)
+        return float(v) if isinstance(v, int | float) and not isinstance(v, bool) else None
+
+    lam, alpha = num("lambda"), num("alpha")
+    if lam is not None:
+        learning["lambda_max"] = lam
+        if (num("lambda_min") or 0.0) > lam:
+            learning["lambda_min"] = lam
+    if alpha is not None:
+        lifts = learning.get("step_adapt", fields["step_adapt"].default) == "gap"
+        top = num("alpha_max")
+        learning["alpha_max"] = max(alpha, top) if lifts and top is not None else alpha
+        if (num("alpha_min") or 0.0) > alpha:
+            learning["alpha_min"] = alpha
     return data
 
 
@@ -225,7 +267,7 @@ def build_candidates(raw: Mapping[str, Any], cfg: Config,
     out = []
     for i, (s, labels) in enumerate(wanted):
         try:
-            c: Config | None = parse_config(_merged(raw, s), f"candidate {i}")
+            c: Config | None = parse_config(candidate_document(raw, s), f"candidate {i}")
             refused: tuple[str, ...] = ()
         except ConfigError as exc:
             c, refused = None, tuple(exc.errors)

@@ -12,6 +12,10 @@ reference):
 
 * against **truth** — each corrected value the daemon would publish, minus the reading's
   ``truth``, for every corrected reading that has one;
+* against **spans** — the references' residuals again, each counted once for every corrected
+  value published since the sensor's previous paired reference (at least once): the error of
+  the values it stands for, which is what sparse references (one collocation day a week, one
+  spot check a day) can say about every published value when there is no truth;
 * against **references** — each paired reference's residual: the model's prediction at the
   paired inputs, taken before that reference is applied (or gated), minus the reference.
 
@@ -27,23 +31,25 @@ import copy
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any, Literal
 
 import numpy as np
 
+from trimtab.config import Config
 from trimtab.engine import elapsed_scale_days
 from trimtab.errors import DataError
 from trimtab.guards import Guard
 from trimtab.model import RidgeModel
 from trimtab.stability import STEP_BOUND, step_check
 from trimtab.terms import Scaler
-from trimtab.tunegrid import Candidate
-from trimtab.tunetrace import SensorTrace, Trace
+from trimtab.tunegrid import TUNED, Candidate
+from trimtab.tunetrace import SensorTrace, Trace, record
 from trimtab.vengine import STATUSES, Common, Settings, VEngine, phi_rows
 
 __all__ = ["Against", "Outcome", "Score", "TuneResult", "Tuner", "snippet"]
 
-Against = Literal["truth", "references"]
+Against = Literal["truth", "references", "spans"]
 CHUNK = 4096
 """Most readings predicted in one block (bounds a block's K × B arrays)."""
 
@@ -82,6 +88,13 @@ class Outcome:
     settings, evaluated at this candidate's α and λ (the largest it ever uses)."""
     reached: float
     """2 / the largest a·(λ/m + ‖φ‖²) of any step it took: how near the steps actually came."""
+    folds: list[Score] = field(default_factory=list)
+    """The tune part's score in each of its consecutive time blocks (rolling origin)."""
+
+    def fold_spread(self) -> tuple[float, float] | None:
+        """The smallest and largest fold RMSE, or None when no fold was scored."""
+        got = [s.rmse for s in self.folds if s.rmse is not None]
+        return (min(got), max(got)) if got else None
 
 
 @dataclass(slots=True)
@@ -117,7 +130,10 @@ class Tuner:
     """Evaluate candidates on a recorded stream; see the module docstring."""
 
     def __init__(self, trace: Trace, candidates: Sequence[Candidate], *, split: float = 0.7,
-                 against: Against | Literal["auto"] = "auto") -> None:
+                 against: Against | Literal["auto"] = "auto", folds: int = 3) -> None:
+        if not 1 <= folds <= 100:
+            raise DataError(f"folds = {folds}: give between 1 and 100 blocks of the tune part")
+        self.folds = folds
         if not 0.0 < split <= 1.0:
             raise DataError(f"split = {split}: give a fraction of the stream's time span in (0, 1]")
         self.trace = trace
@@ -139,6 +155,16 @@ class Tuner:
     def _part(self, t: float) -> int:
         return 0 if self.split_t is None or t < self.split_t else 1
 
+    def _fold(self, t: float) -> int:
+        """Which of the tune part's consecutive time blocks t falls in; -1 in the test part."""
+        t0 = self.trace.t_first
+        end = self.split_t if self.split_t is not None else self.trace.t_last
+        if t0 is None or end is None or self._part(t) == 1:
+            return -1
+        if end <= t0:
+            return 0
+        return min(self.folds - 1, max(0, int(self.folds * (t - t0) / (end - t0))))
+
     def _groups(self, tr: SensorTrace, base: RidgeModel) -> dict[Scaler, list[int]]:
         groups: dict[Scaler, list[int]] = {}
         for pos, cand in enumerate(self.valid):
@@ -159,18 +185,40 @@ class Tuner:
                             for lc in lcs]),
             normalised=np.array([lc.normalised for lc in lcs]),
             gate_k=np.array([lc.gate_k for lc in lcs]),
+            rollback_factor=np.array([lc.rollback_factor for lc in lcs]),
+            alpha_recovery=np.array([lc.alpha_recovery for lc in lcs]),
+            alpha_min=np.array([lc.alpha_min for lc in lcs]),
+            alpha_max=np.array([lc.alpha_max for lc in lcs]),
+            step_gap=np.array([lc.step_gap if lc.step_adapt == "gap" else math.inf
+                               for lc in lcs]),
         )
         cfg = self.trace.config
         lc = cfg.learning
         assert tr.state is not None
         common = Common(gate_run=lc.gate_run, warmup=lc.warmup, snapshot_every=lc.snapshot_every,
-                        rollback_factor=lc.rollback_factor, alpha_min=lc.alpha_min,
-                        cap=cfg.output.cap, warm=tr.state.warm)
+                        cap=cfg.output.cap, warm=tr.state.warm,
+                        error_window=lc.error_window,
+                        band_coverage=cfg.output.band_coverage, band_gain=cfg.output.band_gain)
         n = template.n_terms
-        ref_phi = np.array([template.phi(dict(zip(tr.inputs, r.values, strict=True)), r.t_pair)[0]
-                            for r in tr.refs]).reshape(len(tr.refs), n)
+        scalers = None
+        if lc.scaler == "follow":
+            # the recorder's elapsed scale is the base config's; this group's may differ
+            scalers = [r.scaler if not template.spec.elapsed else
+                       Scaler(r.scaler.centre, (*r.scaler.scale[:-1], scaler.scale[-1]))
+                       for r in tr.refs]
+        moved = template.copy()
+        rows = []
+        for i, r in enumerate(tr.refs):
+            if scalers is not None:
+                moved.move_scaler(scalers[i])
+            rows.append(moved.phi(dict(zip(tr.inputs, r.values, strict=True)), r.t_pair)[0])
+        ref_phi = np.array(rows).reshape(len(tr.refs), n)
         ref_y = np.array([r.y for r in tr.refs], dtype=np.float64)
-        return VEngine(template, settings, common, ref_phi, ref_y)
+        ve = VEngine(template, settings, common, ref_phi, ref_y, scalers, folds=self.folds)
+        if self.against == "spans":
+            pos = np.array([r.pos for r in tr.refs], dtype=np.int64)
+            ve.ref_w = np.maximum(1, np.diff(pos, prepend=0))
+        return ve
 
     def _drive(self, ve: VEngine, tr: SensorTrace, should_stop: Callable[[], bool],
                tick: Callable[[int], None]) -> bool:
@@ -182,23 +230,31 @@ class Tuner:
         raw = X[:, 0]
         part = (np.zeros(len(t), dtype=np.int8) if self.split_t is None
                 else (t >= self.split_t).astype(np.int8))
+        fold = np.array([self._fold(x) for x in t.tolist()], dtype=np.int64)
         ready = tr.unready
-        phi = phi_rows(ve.model, X[ready:], t[ready:])
+        follow = ve.ref_scalers is not None
+        phi = None if follow else phi_rows(ve.model, X[ready:], t[ready:])
         pos = 0
         with np.errstate(all="ignore"):
             for i in range(len(tr.refs) + 1):
                 nxt = tr.refs[i].pos if i < len(tr.refs) else tr.outputs
                 while pos < nxt:
                     end = min(nxt, pos + CHUNK, ready if pos < ready else nxt)
-                    block = None if pos < ready else phi[pos - ready : end - ready]
-                    ve.score_outputs(block, raw[pos:end], truth[pos:end], part[pos:end])
+                    if pos < ready:
+                        block = None
+                    elif phi is None:
+                        block = phi_rows(ve.model, X[pos:end], t[pos:end], ve.scaler)
+                    else:
+                        block = phi[pos - ready : end - ready]
+                    ve.score_outputs(block, raw[pos:end], truth[pos:end], part[pos:end],
+                                     fold[pos:end])
                     tick(end - pos)
                     pos = end
                     if should_stop():
                         return False
                 if i < len(tr.refs):
                     ref = tr.refs[i]
-                    ve.reference(i, ref.t, self._part(ref.t))
+                    ve.reference(i, ref.t, self._part(ref.t), self._fold(ref.t))
                     tick(1)
                     if i % 64 == 63 and should_stop():
                         return False
@@ -300,12 +356,42 @@ class Tuner:
                     gain = max(gain, float(ve.max_gain[j]))
         assert cand.config is not None
         lc = cand.config.learning
-        margin = min(step_check(label, terms=s.term_count(), alpha_max=lc.alpha,
-                                lambda_max=lc.lam, memory=lc.memory, clip=lc.feature_clip,
+        margin = min(step_check(label, terms=s.term_count(), alpha_max=lc.alpha_max,
+                                lambda_max=lc.lambda_max, memory=lc.memory,
+                                clip=lc.feature_clip,
                                 normalised=lc.normalised).margin
                      for label, s in cand.config.settings_groups().items())
         reached = STEP_BOUND / gain if gain > 0.0 else math.inf
-        return Outcome(cand, pooled[0], pooled[1], per, rollbacks, gated, margin, reached)
+        return Outcome(cand, pooled[0], pooled[1], per, rollbacks, gated, margin, reached,
+                       self._fold_scores(pos))
+
+    def _fold_scores(self, pos: int) -> list[Score]:
+        """The tune part's score per fold, pooled over sensors (raw-only sensors included)."""
+        sse = [0.0] * self.folds
+        n = [0] * self.folds
+        if self.against == "truth":
+            for tr in self.trace.sensors.values():
+                if self.trace.models[tr.sensor] is not None:
+                    continue
+                for x_t, raw, truth in zip(tr.out_t, tr.out_x[:: len(tr.inputs)],
+                                           tr.out_truth, strict=True):
+                    f = self._fold(x_t)
+                    if f >= 0 and not math.isnan(truth):
+                        sse[f] += (raw - truth) ** 2
+                        n[f] += 1
+        for engines in self.engines.values():
+            for ve, members in engines:
+                if pos not in members:
+                    continue
+                j = members.index(pos)
+                for f in range(self.folds):
+                    if self.against == "truth":
+                        sse[f] += float(ve.fold_out_sse[f, j])
+                        n[f] += int(ve.fold_out_n[f])
+                    else:
+                        sse[f] += float(ve.fold_ref_sse[f, j])
+                        n[f] += int(ve.fold_ref_n[f, j])
+        return [Score(a, 0.0, b) for a, b in zip(sse, n, strict=True)]
 
     def _result(self, complete: bool) -> TuneResult:
         outcomes = [self._outcome(p) for p in range(len(self.valid))]
@@ -338,9 +424,11 @@ class Tuner:
         return state
 
 
-def _toml_value(v: float | int | bool) -> str:
+def _toml_value(v: float | int | bool | str) -> str:
     if isinstance(v, bool):
         return "true" if v else "false"
+    if isinstance(v, str):
+        return f'"{v}"'
     return repr(v)
 
 
@@ -348,10 +436,81 @@ def snippet(outcome: Outcome) -> str:
     """The recommended settings as a ``[learning]`` table to put in the config file."""
     s = outcome.candidate.settings
     lines = ["[learning]"]
-    for key in ("alpha", "lambda", "memory", "huber_delta", "gate_k", "normalised"):
+    for key in TUNED:
         v = s[key]
         if v is None:
             lines.append(f"# {key} unset (squared loss)")
         else:
             lines.append(f"{key} = {_toml_value(v)}")
     return "\n".join(lines)
+
+
+def scaler_group(cfg: Config) -> tuple[str | float, ...]:
+    """What a candidate's recorded pass depends on beyond pairing: how its scaler moves."""
+    lc = cfg.learning
+    return ("fixed",) if lc.scaler == "fixed" else ("follow", lc.scaler_span, lc.scaler_width)
+
+
+@dataclass(slots=True)
+class GroupedRun:
+    """One tuning run over candidates whose scalers move differently: one record pass each."""
+
+    result: TuneResult
+    tuners: list[Tuner]
+
+    def engine_state(self, index: int) -> dict[str, Any]:
+        """The engine state ``trimtab replay --state-out`` leaves with candidate ``index``."""
+        for tuner in self.tuners:
+            if any(c.index == index for c in tuner.valid):
+                return tuner.engine_state(index)
+        raise DataError(f"candidate {index} was not evaluated")
+
+
+def tune_stream(stream: str | Path, candidates: Sequence[Candidate], *, split: float = 0.7,
+                against: Against | Literal["auto"] = "auto",
+                should_stop: Callable[[], bool] | None = None,
+                read_progress: Callable[[int], None] | None = None,
+                progress: Callable[[float], None] | None = None,
+                base: Config | None = None, folds: int = 3) -> GroupedRun:
+    """Record the stream once per scaler group and evaluate each group's candidates on it.
+
+    Pairing, buffers and the moves of a followed scaler depend on no other tuned setting, so
+    candidates of one group share one record (:func:`trimtab.tunetrace.record`) and advance
+    together; the results are merged and ranked as one.
+    """
+    groups: dict[tuple[str | float, ...], list[Candidate]] = {}
+    for c in candidates:
+        if c.config is not None:
+            groups.setdefault(scaler_group(c.config), []).append(c)
+    refused = [c for c in candidates if not c.valid]
+    if not groups:
+        if base is None:
+            raise DataError("no candidate was valid and no config was given to read the stream")
+        trace = record(base, stream, should_stop=should_stop, progress=read_progress)
+        tuner = Tuner(trace, refused, split=split, against=against, folds=folds)
+        return GroupedRun(tuner.run(should_stop=should_stop), [tuner])
+    tuners: list[Tuner] = []
+    results: list[TuneResult] = []
+    for i, members in enumerate(groups.values()):
+        assert members[0].config is not None
+        trace = record(members[0].config, stream, should_stop=should_stop,
+                       progress=read_progress)
+        tuner = Tuner(trace, members + (refused if i == 0 else []), split=split,
+                      against=against, folds=folds)
+        tuners.append(tuner)
+        done = len(results)
+
+        def part(f: float, done: int = done) -> None:
+            if progress is not None:
+                progress((done + f) / len(groups))
+
+        results.append(tuner.run(should_stop=should_stop, progress=part))
+        if not results[-1].complete:
+            break
+    first = results[0]
+    outcomes = [o for r in results for o in r.outcomes]
+    outcomes.sort(key=lambda o: (o.tune.rmse is None, o.tune.rmse or 0.0, o.candidate.index))
+    merged = TuneResult(first.against, first.split, first.split_t, outcomes, refused,
+                        first.events, all(r.complete for r in results) and
+                        len(results) == len(groups), first.sensors)
+    return GroupedRun(merged, tuners)

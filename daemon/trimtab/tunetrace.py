@@ -35,6 +35,7 @@ from trimtab.errors import DataError, DecodeError
 from trimtab.messages import Corrected, Reading
 from trimtab.model import RidgeModel
 from trimtab.streamfile import read_events
+from trimtab.terms import Scaler
 from trimtab.wiring import initial_models
 
 __all__ = ["LEARNED", "RefRecord", "SensorTrace", "Trace", "record"]
@@ -55,6 +56,8 @@ class RefRecord:
     t_pair: float
     y: float
     t: float
+    scaler: Scaler
+    """The scaler the engine standardises with for this reference (after its scaler move)."""
 
 
 @dataclass(slots=True)
@@ -73,6 +76,8 @@ class SensorTrace:
     refs: list[RefRecord] = field(default_factory=list)
     state: SensorState | None = None
     """The engine's state of the sensor after the stream (model at its initial weights)."""
+    scaler: Scaler | None = None
+    """The scaler in force after the last recorded reference (None: the model's own)."""
 
     @property
     def outputs(self) -> int:
@@ -137,8 +142,18 @@ class _Recorder(Engine):
     def _learn(self, st: SensorState, values: Sequence[float], t_pair: float, y: float,
                ref_t: float) -> tuple[str, float | None]:
         tr = self._find(st)
+        assert st.model is not None
+        scaler = st.model.scaler if tr.scaler is None else tr.scaler
+        lc = self._cfg.learning
+        if lc.scaler == "follow" and st.ranges is not None:
+            # the engine's own move (Engine._learn), on the scaler alone: θ is per candidate
+            moved = st.ranges.target(scaler, lc.scaler_width)
+            if moved != scaler:
+                self.counts["scaler_moved"] += 1
+            scaler = moved
+        tr.scaler = scaler
         tr.refs.append(RefRecord(len(tr.out_t), tuple(float(v) for v in values), float(t_pair),
-                                 float(y), float(ref_t)))
+                                 float(y), float(ref_t), scaler))
         return LEARNED, None
 
     def _find(self, st: SensorState) -> SensorTrace:

@@ -27,9 +27,12 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from trimtab.engine import band_start, band_step
 from trimtab.errors import DataError
-from trimtab.guards import Guard
+from trimtab.guards import SQRT_HALF_PI, Guard, gap_fraction, lifted
 from trimtab.model import RidgeModel, dot
+from trimtab.ranges import remap
+from trimtab.terms import Scaler
 
 __all__ = ["STATUSES", "Common", "Settings", "VEngine", "phi_rows"]
 
@@ -53,6 +56,12 @@ class Settings:
     """Huber δ; +inf stands for the squared loss (unset), which clipping at ±inf leaves alone."""
     normalised: Mask
     gate_k: F64
+    rollback_factor: F64
+    alpha_recovery: F64
+    alpha_min: F64
+    alpha_max: F64
+    step_gap: F64
+    """Span of the gap lift per candidate; +inf where ``step_adapt`` is "none" (no lift)."""
 
     def __len__(self) -> int:
         return len(self.alpha)
@@ -65,16 +74,21 @@ class Common:
     gate_run: int
     warmup: int
     snapshot_every: int
-    rollback_factor: float
-    alpha_min: float
     cap: float | None
     warm: bool
+    error_window: int = 200
+    band_coverage: float = 0.9
+    band_gain: float = 0.05
 
 
-def phi_rows(model: RidgeModel, X: F64, t: F64) -> F64:
-    """Feature rows [1, z_1 … z_k] of many readings, bit for bit what ``model.phi`` gives."""
+def phi_rows(model: RidgeModel, X: F64, t: F64, scaler: Scaler | None = None) -> F64:
+    """Feature rows [1, z_1 … z_k] of many readings, bit for bit what ``model.phi`` gives.
+
+    ``scaler`` standardises instead of the model's own (a followed scaler after a move).
+    """
     T = model.spec.matrix(X, t, model.origin)
-    Z = (T - np.asarray(model.scaler.centre)) / np.asarray(model.scaler.scale)
+    sc = model.scaler if scaler is None else scaler
+    Z = (T - np.asarray(sc.centre)) / np.asarray(sc.scale)
     if np.isnan(Z).any():
         raise DataError(f"a term of the model {list(model.spec.names())} is not finite")
     clip = model.clip
@@ -99,7 +113,8 @@ class VEngine:
     """The learning state of K candidates for one sensor; see the module docstring."""
 
     def __init__(self, model: RidgeModel, settings: Settings, common: Common,
-                 ref_phi: F64, ref_y: F64) -> None:
+                 ref_phi: F64, ref_y: F64, ref_scalers: list[Scaler] | None = None,
+                 folds: int = 1) -> None:
         k = len(settings)
         n = model.n_terms
         self.model = model
@@ -107,6 +122,10 @@ class VEngine:
         self.c = common
         self.ref_phi = ref_phi
         self.ref_y = ref_y
+        self.ref_scalers = ref_scalers
+        self.ref_w: I64 | None = None
+        """Weights of the reference scores (``against = "spans"``), None: each counts once."""
+        self.scaler = model.scaler
         self.ref_phisq = np.array([dot(row, row) for row in ref_phi.tolist()])
         self.prior = np.asarray(model.prior, dtype=np.float64)[:, None]
         self.th = np.repeat(np.asarray(model.theta, dtype=np.float64)[:, None], k, axis=1)
@@ -128,6 +147,11 @@ class VEngine:
         self.held = np.zeros(k, dtype=bool)
         self.rollbacks = np.zeros(k, dtype=np.int64)
         self.fresh = np.ones(k, dtype=bool)
+        self.long_abs = np.zeros(k)
+        self.long_n = np.zeros(k, dtype=np.int64)
+        self.band_k = np.full(k, band_start(common.band_coverage))
+        self.band_hit = np.zeros(k, dtype=np.int64)
+        self.band_n = np.zeros(k, dtype=np.int64)
         # what the engine's sensor state adds, and the tuner's own tallies
         self.last_applied_t = np.full(k, np.nan)
         self.sq_preq = np.zeros(k)
@@ -141,6 +165,12 @@ class VEngine:
         self.out_sse = np.zeros((2, k))
         self.out_sum = np.zeros((2, k))
         self.out_n = np.zeros(2, dtype=np.int64)
+        # the same sums per fold of the tune part (rolling origin: each fold is predicted
+        # from everything before it)
+        self.fold_ref_sse = np.zeros((folds, k))
+        self.fold_ref_n = np.zeros((folds, k), dtype=np.int64)
+        self.fold_out_sse = np.zeros((folds, k))
+        self.fold_out_n = np.zeros(folds, dtype=np.int64)
 
     def __len__(self) -> int:
         return len(self.alpha)
@@ -165,14 +195,16 @@ class VEngine:
 
     # -- one update: RidgeModel.step_phi inside the engine's _apply ------------------------------
 
-    def _apply(self, m: Mask, phi: F64, y: float | F64, phisq: float | F64) -> NDArray[np.int8]:
+    def _apply(self, m: Mask, phi: F64, y: float | F64, phisq: float | F64,
+               lift: F64) -> NDArray[np.int8]:
         """The engine's ``_apply`` for candidates in ``m``; returns a status code each."""
         status = np.zeros(len(self), dtype=np.int8)
         self._snapshot(m & ~self.has_snap, self.recent)
         s = self.s
         r = self._dot(phi) - y
         psi = np.maximum(-s.delta, np.minimum(s.delta, r))
-        a = np.where(s.normalised, self.alpha / (1.0 + phisq), self.alpha)
+        alpha = lifted(self.alpha, s.alpha_max, lift)
+        a = np.where(s.normalised, alpha / (1.0 + phisq), alpha)
         shrink = 1.0 - a * s.lam / s.memory
         ap = a * psi
         phi_c = phi if phi.ndim == 2 else phi[:, None]
@@ -198,14 +230,21 @@ class VEngine:
         self.recent = np.where(ok, np.where(self.fresh, sq, (1.0 - w) * self.recent + w * sq),
                                self.recent)
         self.fresh &= ~ok
+        a_r = np.abs(r)
+        wl = 2.0 / (self.c.error_window + 1.0)
+        self.long_abs = np.where(ok, np.where(self.long_n == 0, a_r,
+                                              self.long_abs + wl * (a_r - self.long_abs)),
+                                 self.long_abs)
+        self.long_n += ok
         self.applied += ok
         self.since += ok
         self.held &= ~ok
         # Guard.exploded → roll back to the snapshot and halve α
-        boom = ok & self.has_snap & (self.snap_ms > 0.0) & (
-            self.recent > (self.c.rollback_factor ** 2) * self.snap_ms)
+        limit = s.rollback_factor * SQRT_HALF_PI * self.long_abs
+        boom = ok & self.has_snap & (self.long_n >= self.c.snapshot_every) & (
+            self.long_abs > 0.0) & (self.recent > limit * limit)
         if boom.any():
-            self.alpha = np.where(boom, np.maximum(self.alpha * 0.5, self.c.alpha_min), self.alpha)
+            self.alpha = np.where(boom, np.maximum(self.alpha * 0.5, s.alpha_min), self.alpha)
             self.held |= boom
             self.rollbacks += boom
             self.recent = np.where(boom, self.snap_ms, self.recent)
@@ -217,28 +256,61 @@ class VEngine:
             self.updates[boom] = self.snap_updates[boom]
             status[boom] = _ROLLED_BACK
         good = ok & ~boom
+        # Guard.recover
+        low = good & (self.alpha < s.alpha)
+        if low.any():
+            back = np.minimum(s.alpha, self.alpha + s.alpha_recovery * (s.alpha - self.alpha))
+            self.alpha = np.where(low, back, self.alpha)
         status[good] = _APPLIED
         self._snapshot(good & (self.since >= self.c.snapshot_every), self.recent)
         return status
 
+    def _move(self, new: Scaler) -> None:
+        """Engine._move_scaler for every candidate: θ, the prior and the snapshots follow."""
+        old = self.scaler
+        if new == old:
+            return
+        self.th = np.array(remap(list(self.th), old, new))
+        self.prior = np.array(remap(list(self.prior), old, new))
+        self.snap_th = np.array(remap(list(self.snap_th), old, new))
+        self.scaler = new
+
     # -- one paired reference: the engine's _learn -------------------------------------------------
 
-    def reference(self, i: int, t: float, part: int) -> None:
+    def reference(self, i: int, t: float, part: int, fold: int = -1) -> None:
         """Gate and apply reference ``i`` (paired at record time) for every candidate."""
+        if self.ref_scalers is not None:
+            self._move(self.ref_scalers[i])
         phi, y, phisq = self.ref_phi[i], float(self.ref_y[i]), float(self.ref_phisq[i])
         s = self.s
         r = self._dot(phi) - y
         fin = np.isfinite(r)
+        # the band's calibration (Engine._learn): covered = |r| ≤ k·spread, then band_step
+        covered = np.abs(r) <= self.band_k * self.spread
+        self.band_hit += fin & covered
+        self.band_n += fin
+        self.band_k = np.where(fin, band_step(self.band_k, covered, self.c.band_coverage,
+                                              self.c.band_gain), self.band_k)
         self.counts["non_finite"] += ~fin
         sq = r * r
         self.sq_preq = np.where(fin, self.sq_preq + sq, self.sq_preq)
         self.n_preq += fin
+        if self.ref_w is not None:  # scored against spans: once per value the reference stands for
+            w = int(self.ref_w[i])
+            sq, rw = sq * w, r * w
+        else:
+            w, rw = 1, r
         self.ref_sse[part] = np.where(fin, self.ref_sse[part] + sq, self.ref_sse[part])
-        self.ref_sum[part] = np.where(fin, self.ref_sum[part] + r, self.ref_sum[part])
-        self.ref_n[part] += fin
+        self.ref_sum[part] = np.where(fin, self.ref_sum[part] + rw, self.ref_sum[part])
+        self.ref_n[part] += fin * w
+        if fold >= 0:
+            self.fold_ref_sse[fold] = np.where(fin, self.fold_ref_sse[fold] + sq,
+                                               self.fold_ref_sse[fold])
+            self.fold_ref_n[fold] += fin * w
         # Guard.judge
         gate = (self.applied >= self.c.warmup) & (self.spread > 0.0)
-        rej = fin & gate & ~(np.abs(r) <= s.gate_k * self.spread)
+        scale = np.maximum(self.spread, SQRT_HALF_PI * self.long_abs)  # Guard.judge
+        rej = fin & gate & ~(np.abs(r) <= s.gate_k * scale)
         accept = fin & ~rej
         self.run_sign[accept] = 0
         self.n_susp[accept] = 0
@@ -253,6 +325,10 @@ class VEngine:
             self.susp[rows, self.n_susp[rows]] = i
             self.n_susp[rows] += 1
             self.counts["gated"] += suspect
+        # the gap lift of Engine._learn: none before the first applied reference or when off
+        gap = np.where(np.isnan(self.last_applied_t), 0.0, t - self.last_applied_t)
+        lift = np.where(np.isinf(s.step_gap) | np.isnan(self.last_applied_t), 0.0,
+                        gap_fraction(gap, s.step_gap))
         stuck = np.zeros(len(self), dtype=bool)
         if shift.any():
             # Guard.flat_run: held suspects all repeating this very value are a stuck
@@ -266,14 +342,17 @@ class VEngine:
             # Guard.restart_baseline before learning the new regime, then the held suspects
             self._snapshot(shift, np.zeros(len(self)))
             self.fresh |= shift
+            self.long_abs[shift] = 0.0
+            self.long_n[shift] = 0
+            lift = np.where(shift, 1.0, lift)  # Engine._learn: a shift is learnt at alpha_max
             held = np.where(shift, self.n_susp, 0)
             self.run_sign[shift] = 0
             self.n_susp[shift] = 0
             for slot in range(int(held.max())):
                 m = held > slot
                 idx = self.susp[:, slot]
-                self._apply(m, self.ref_phi[idx].T, self.ref_y[idx], self.ref_phisq[idx])
-        status = self._apply(fin & ~suspect & ~stuck, phi, y, phisq)
+                self._apply(m, self.ref_phi[idx].T, self.ref_y[idx], self.ref_phisq[idx], lift)
+        status = self._apply(fin & ~suspect & ~stuck, phi, y, phisq, lift)
         applied = status == _APPLIED
         self.last_applied_t = np.where(applied, t, self.last_applied_t)
         shifted = applied & shift
@@ -284,7 +363,8 @@ class VEngine:
 
     # -- corrected values: the engine's _correct, scored -------------------------------------------
 
-    def score_outputs(self, phi: F64 | None, raw: F64, truth: F64, part: NDArray[np.int8]) -> None:
+    def score_outputs(self, phi: F64 | None, raw: F64, truth: F64, part: NDArray[np.int8],
+                      fold: I64 | None = None) -> None:
         """Correct a block of readings (no reference between them) and score them against truth.
 
         ``phi`` is None for readings before the model existed: those are published raw.
@@ -298,7 +378,7 @@ class VEngine:
                 value = value + self.th[j][:, None] * phi[:, j][None, :]
             use = np.full(k, True) if self.c.warm else self.applied >= self.c.warmup
             if not use.all():
-                prior = self.model.prior
+                prior = [float(v) for v in self.prior[:, 0]]  # moved with the scaler
                 # the engine's own expression for a model still in warmup
                 pv = np.array([sum(p * f for p, f in zip(prior, row, strict=True))
                                for row in phi.tolist()])
@@ -320,6 +400,13 @@ class VEngine:
             self.out_sse[p] = _seq_add(self.out_sse[p], err * err)
             self.out_sum[p] = _seq_add(self.out_sum[p], err)
             self.out_n[p] += int(cols.sum())
+        if fold is None:
+            return
+        for f in np.unique(fold[has & (fold >= 0)]).tolist():
+            cols = has & (fold == f)
+            err = value[:, cols] - truth[cols][None, :]
+            self.fold_out_sse[f] = _seq_add(self.fold_out_sse[f], err * err)
+            self.fold_out_n[f] += int(cols.sum())
 
     # -- one candidate's state in the engine's own form ------------------------------------------
 
@@ -327,6 +414,7 @@ class VEngine:
         """Candidate i's model with the given weights, spread and step count."""
         s = self.s
         d = self.model.to_dict()
+        d.update(scaler=self.scaler.to_dict(), prior=[float(v) for v in self.prior[:, 0]])
         d.update(lam=float(s.lam[i]), memory=float(s.memory[i]), normalised=bool(s.normalised[i]),
                  huber_delta=None if math.isinf(s.delta[i]) else float(s.delta[i]),
                  theta=[float(v) for v in th], spread=spread, updates=updates)
@@ -346,6 +434,7 @@ class VEngine:
             snapshot=snapshot, snapshot_ms=float(self.snap_ms[i]),
             since_snapshot=int(self.since[i]),
             held=bool(self.held[i]), rollbacks=int(self.rollbacks[i]), fresh=bool(self.fresh[i]),
+            long_abs=float(self.long_abs[i]), long_n=int(self.long_n[i]),
         )
         last = float(self.last_applied_t[i])
         model = self.model_of(i, self.th[:, i], float(self.spread[i]), int(self.updates[i]))
@@ -355,4 +444,5 @@ class VEngine:
             "last_applied_t": None if math.isnan(last) else last,
             "sq_preq": float(self.sq_preq[i]),
             "n_preq": int(self.n_preq[i]),
+            "band": [float(self.band_k[i]), int(self.band_hit[i]), int(self.band_n[i])],
         }

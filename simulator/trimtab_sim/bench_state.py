@@ -25,7 +25,7 @@ from pathlib import Path
 from typing import Any
 
 from trimtab.config import Config, load_config
-from trimtab.engine import Engine
+from trimtab.engine import STATE_VERSION, Engine
 from trimtab.messages import Reading, Reference
 from trimtab.pairing import ReadingBuffer
 from trimtab.statestore import StateStore
@@ -64,7 +64,7 @@ def _parse(text: str) -> Any:
 def engine_state(template: str, n: int) -> dict[str, Any]:
     """An engine state of ``n`` sensors, each from its own parse of the template."""
     sensors = {f"s{k:06d}": json.loads(template) for k in range(n)}
-    return {"version": 1, "sensors": sensors, "counts": {}}
+    return {"version": STATE_VERSION, "sensors": sensors, "counts": {}}
 
 
 def _rss() -> int:
@@ -84,7 +84,7 @@ def memory(n: int, mode: str, inputs: int, workdir: Path) -> dict[str, Any]:
     # One sensor at a time, so no parsed JSON outweighs the engine being measured. Keys are
     # interned as json's own key memo does across one checkpoint document.
     for k in range(n):
-        engine.import_sensor({"format": "trimtab-sensor-state", "version": 1,
+        engine.import_sensor({"format": "trimtab-sensor-state", "version": STATE_VERSION,
                               "sensor": f"s{k:06d}", "state": _parse(template)})
     gc.collect()
     after = tracemalloc.get_traced_memory()[0] if mode == "traced" else _rss()

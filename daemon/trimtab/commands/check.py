@@ -14,9 +14,13 @@ import json
 from typing import Any
 
 from trimtab.config import RELOADABLE, Config, derived_figures, file_problems, load_config
+from trimtab.engine import configured_prior, configured_scaler, spec_of
 from trimtab.errors import ConfigError
+from trimtab.model import RidgeModel
 from trimtab.options import deprecated
 from trimtab.sensorconfig import key
+from trimtab.terms import Scaler
+from trimtab.wiring import initial_models
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -50,6 +54,9 @@ def run(args: argparse.Namespace) -> int:
         if problems:
             raise ConfigError(f"{source}: {len(problems)} problem(s) with named files", problems)
     figures = derived_figures(cfg)
+    # the same initial models run and replay load: their files and terms are checked too
+    models = {} if args.no_files else initial_models(cfg)
+    figures["models"] = model_figures(cfg, models)
     if args.json:
         out = {
             "config": cfg.model_dump(mode="json", by_alias=True),
@@ -74,10 +81,76 @@ def render(cfg: Config, figures: dict[str, Any], source: str) -> str:
     lines += to_toml(data)
     lines += ["", "# -- derived figures " + "-" * 61]
     lines += _figures(figures)
+    if "models" in figures:
+        lines += ["", "# -- models: effective scaler and prior " + "-" * 42]
+        lines += _model_lines(figures["models"])
     lines += ["", "# -- reload " + "-" * 70]
     lines.append("# live on SIGHUP: " + ", ".join(sorted(RELOADABLE)))
     lines.append("# any other change needs a restart")
     return "\n".join(lines)
+
+
+def model_figures(cfg: Config, models: dict[str, RidgeModel]) -> dict[str, Any]:
+    """Each sensor setting's starting scaler and effective prior, and how the scaler moves.
+
+    ``models`` are the loaded ``initial_state`` files (empty with ``--no-files``: a sensor
+    that starts from a file then shows only the file's name).
+    """
+    lc = cfg.learning
+    moves = (f"follows the operating range: scale = {lc.scaler_width:g} running sd, "
+             f"time constant {lc.scaler_span:g} s" if lc.scaler == "follow" else "fixed")
+    out: dict[str, Any] = {}
+    names = ["defaults", *cfg.sensors.ids, *(o for o in cfg.sensors.overrides
+                                             if o not in cfg.sensors.ids)]
+    for name in names:
+        s = cfg.sensors.defaults if name == "defaults" else cfg.sensor_settings(name)
+        spec = spec_of(s)
+        entry: dict[str, Any] = {"terms": list(spec.names()), "scaler_moves": moves}
+        scaler: Scaler | None = None
+        file_prior: tuple[float, ...] | None = None
+        if s.initial_state is not None:
+            entry["scaler_from"] = f"initial_state {s.initial_state}"
+            model = models.get(str(s.initial_state))
+            if model is not None:
+                scaler, file_prior = model.scaler, model.prior
+        else:
+            scaler = configured_scaler(spec, s, cfg)
+            entry["scaler_from"] = ("configured centre and scale" if scaler is not None else
+                                    f"the first {s.scaler_readings} readings")
+        if scaler is not None:
+            entry["centre"], entry["scale"] = list(scaler.centre), list(scaler.scale)
+        if scaler is not None:
+            prior = configured_prior(s, spec, scaler)
+        else:
+            prior = list(s.prior) if isinstance(s.prior, tuple) else None
+        if s.prior is None and s.initial_state is not None:
+            entry["prior_from"] = f"the initial_state file {s.initial_state}"
+            prior = None if file_prior is None else list(file_prior)
+        else:
+            entry["prior_from"] = {None: "factory (corrected = raw)", "factory":
+                                   "factory (corrected = raw)", "zero": "zero (plain ridge)"
+                                   }.get(s.prior if isinstance(s.prior, str | None) else "",
+                                         "configured weights")
+        entry["prior"] = prior
+        out[name] = entry
+    return out
+
+
+def _model_lines(m: dict[str, Any]) -> list[str]:
+    out = []
+    for name, e in m.items():
+        out.append(f"# {name}: terms {', '.join(e['terms'])}")
+        where = e["scaler_from"]
+        if "centre" in e:
+            where += f": centre {_nums(e['centre'])}, scale {_nums(e['scale'])}"
+        out.append(f"#   scaler from {where}; {e['scaler_moves']}")
+        prior = "" if e["prior"] is None else f": {_nums(e['prior'])} (standardised)"
+        out.append(f"#   prior: {e['prior_from']}{prior}")
+    return out
+
+
+def _nums(v: list[float]) -> str:
+    return "[" + ", ".join(f"{x:.6g}" for x in v) + "]"
 
 
 def _figures(f: dict[str, Any]) -> list[str]:

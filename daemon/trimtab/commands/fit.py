@@ -71,9 +71,11 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="print the report as one JSON object (full digits) instead of text")
     p.add_argument("--folds", type=int, default=5, metavar="N",
                    help="cross-validation blocks for --lambda auto (default: 5)")
-    p.add_argument("--prior", choices=("factory", "zero"), default="factory",
-                   help="what the penalty pulls toward: the factory calibration ŷ = raw, "
-                        "or zero weights (plain ridge) (default: factory)")
+    p.add_argument("--prior", default="factory", metavar="factory|zero|W0,W1,…",
+                   help="what the penalty pulls toward: the factory calibration ŷ = raw, zero "
+                        "weights (plain ridge), or the k + 1 weights in standardised units, "
+                        "intercept first, as a config's prior = [...] gives them "
+                        "(default: factory)")
     p.add_argument("--penalise-intercept", action="store_true",
                    help="penalise the intercept too (default: it is left free)")
     p.add_argument("--memory", type=float, default=None, metavar="M",
@@ -81,6 +83,23 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--tolerance", type=float, default=300.0, metavar="SECONDS",
                    help="stream files: how far before a reference its reading may lie "
                         "(default: 300)")
+
+
+def _prior_arg(text: str, spec: TermSpec) -> list[float] | None:
+    """--prior: None for the factory calibration, else the k + 1 weights."""
+    if text == "factory":
+        return None
+    if text == "zero":
+        return [0.0] * (spec.n_terms + 1)
+    try:
+        weights = [float(v) for v in text.split(",")]
+    except ValueError:
+        raise DataError(f"--prior {text!r}: give factory, zero or comma-separated "
+                        "numbers") from None
+    if len(weights) != spec.n_terms + 1 or not all(math.isfinite(w) for w in weights):
+        raise DataError(f"--prior {text!r}: the model {list(spec.names())} needs "
+                        f"{spec.n_terms + 1} finite weights (intercept first)")
+    return weights
 
 
 def run(args: argparse.Namespace) -> int:
@@ -110,7 +129,7 @@ def run(args: argparse.Namespace) -> int:
     n = data.y.shape[0]
     if n == 0:
         raise DataError(f"{path}: no references to fit")
-    prior = None if args.prior == "factory" else [0.0] * (spec.n_terms + 1)
+    prior = _prior_arg(args.prior, spec)
     cv: CVResult | None = None
     if args.lam == "auto":
         cv = cross_validate(spec, data.X, data.t, data.y, AUTO_GRID, folds=args.folds,

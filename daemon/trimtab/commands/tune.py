@@ -35,8 +35,7 @@ from trimtab.tunegrid import (
     load_grid,
     search_settings,
 )
-from trimtab.tuner import Outcome, Score, Tuner, TuneResult, snippet
-from trimtab.tunetrace import record
+from trimtab.tuner import Outcome, Score, TuneResult, snippet, tune_stream
 
 DEFAULT_SEARCH = 64
 
@@ -54,9 +53,16 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--split", type=float, default=0.7,
                    help="fraction of the stream's time span to tune on; the rest is the test "
                         "part (default 0.7; 1 = no test part)")
-    p.add_argument("--against", choices=("auto", "truth", "references"), default="auto",
-                   help="score corrected values against the readings' truth, or predictions "
-                        "against the references (auto: truth when the stream has it)")
+    p.add_argument("--against", choices=("auto", "truth", "references", "spans"),
+                   default="auto",
+                   help="score corrected values against the readings' truth, predictions "
+                        "against the references, or against the references each counted once "
+                        "per corrected value since the previous one (spans: sparse references, "
+                        "no truth); auto: truth when the stream has it")
+    p.add_argument("--folds", type=int, default=3, metavar="N",
+                   help="consecutive blocks of the tune part scored on their own (rolling "
+                        "origin: each is predicted from everything before it); their spread "
+                        "and the lead over the runner-up are printed (default 3)")
     p.add_argument("--top", type=int, default=20, help="rows of the ranked table (0: all)")
     p.add_argument("--plot", type=Path, default=None, metavar="FILE.png",
                    help="write a PNG of tune RMSE against alpha and lambda (needs matplotlib)")
@@ -103,13 +109,24 @@ def _fmt(v: float | None, digits: int = 4) -> str:
 def _settings_cells(c: Candidate) -> list[str]:
     s = c.settings
     delta = s["huber_delta"]
-    return [f"{s['alpha']:g}", f"{s['lambda']:g}", str(s["memory"]),
+    scaler = ("fixed" if s["scaler"] == "fixed" else
+              f"{s['scaler_width']:g}sd/{_num(s['scaler_span']) / 86400.0:.3g}d")
+    step = "-" if s["step_adapt"] == "none" else f"gap {_num(s['step_gap']) / 3600.0:.3g}h"
+    top = c.config.learning.alpha_max if c.config is not None else s["alpha_max"]
+    return [f"{s['alpha']:g}", f"{top:g}", f"{s['lambda']:g}", str(s["memory"]),
             "-" if delta is None else f"{delta:g}", f"{s['gate_k']:g}",
-            "yes" if s["normalised"] else "no"]
+            "yes" if s["normalised"] else "no", step, scaler, f"{s['rollback_factor']:g}",
+            f"{s['alpha_recovery']:g}"]
+
+
+def _num(v: object) -> float:
+    assert isinstance(v, int | float)
+    return float(v)
 
 
 def _table(result: TuneResult, top: int) -> list[str]:
-    head = ["rank", "alpha", "lambda", "memory", "huber", "gate_k", "norm", "tune RMSE",
+    head = ["rank", "alpha", "alpha_max", "lambda", "memory", "huber", "gate_k", "norm", "step",
+            "scaler", "rollback", "recovery", "tune RMSE",
             "test RMSE", "bias", "rollbacks", "gated", "margin", "reached", ""]
     rows = [head]
     ranked = list(enumerate(result.outcomes, start=1))
@@ -157,9 +174,11 @@ def _refused(result: TuneResult) -> list[str]:
     return out
 
 
-def _cell(v: float | int | bool) -> str:
+def _cell(v: float | int | bool | str) -> str:
     if isinstance(v, bool):
         return "true" if v else "false"
+    if isinstance(v, str):
+        return v
     return f"{v:g}"
 
 
@@ -193,9 +212,40 @@ def _report(result: TuneResult, args: argparse.Namespace) -> list[str]:
     for name, (tune, test) in best.per_sensor.items():
         rows.append([name, _fmt(tune.rmse), str(tune.n), _fmt(test.rmse), str(test.n)])
     lines += ["", "per sensor, rank 1:", *("  " + line for line in _columns(rows))]
+    lines += ["", *_lead(result)]
     lines += ["", "recommended settings (set these keys in the config's [learning] table, then "
               "run trimtab check):", snippet(best)]
     return lines
+
+
+def lead(result: TuneResult) -> dict[str, Any] | None:
+    """How far the recommendation is ahead of the runner-up, pooled and fold by fold."""
+    if len(result.outcomes) < 2 or result.best is None:
+        return None
+    best, second = result.outcomes[0], result.outcomes[1]
+    if best.tune.rmse is None or second.tune.rmse is None:
+        return None
+    folds = [(a.rmse, b.rmse) for a, b in zip(best.folds, second.folds, strict=True)
+             if a.rmse is not None and b.rmse is not None]
+    return {"runner_up": second.candidate.index,
+            "ahead": (second.tune.rmse - best.tune.rmse) / second.tune.rmse,
+            "folds_ahead": sum(a <= b for a, b in folds), "folds": len(folds)}
+
+
+def _lead(result: TuneResult) -> list[str]:
+    best = result.best
+    assert best is not None
+    out = []
+    spread = best.fold_spread()
+    if spread is not None and len(best.folds) > 1:
+        out.append(f"rank 1 over {len(best.folds)} folds of the tune part: RMSE "
+                   f"{_fmt(spread[0])} to {_fmt(spread[1])}")
+    d = lead(result)
+    if d is not None:
+        out.append(f"rank 1 is {d['ahead']:.1%} below the runner-up (candidate "
+                   f"{d['runner_up']}) in tune RMSE, and at or below it in {d['folds_ahead']} of "
+                   f"{d['folds']} folds")
+    return out
 
 
 def _score_json(s: Score) -> dict[str, Any]:
@@ -209,6 +259,7 @@ def _outcome_json(o: Outcome) -> dict[str, Any]:
         "tune": _score_json(o.tune), "test": _score_json(o.test),
         "rollbacks": o.rollbacks, "gated": o.gated,
         "margin": o.margin, "reached": None if o.reached == float("inf") else o.reached,
+        "folds": [_score_json(f) for f in o.folds],
         "per_sensor": {k: {"tune": _score_json(a), "test": _score_json(b)}
                        for k, (a, b) in o.per_sensor.items()},
     }
@@ -223,6 +274,7 @@ def _as_json(result: TuneResult) -> str:
         "refused": [{"candidate": c.index, "settings": dict(c.settings), "errors": list(c.refused)}
                     for c in result.refused],
         "recommended": None if best is None else snippet(best),
+        "lead": lead(result),
     }
     return json.dumps(out, indent=2, ensure_ascii=False)
 
@@ -264,27 +316,29 @@ def _run(args: argparse.Namespace) -> int:
     with _Interrupts() as stop:
         if loud:
             print(f"tune: reading {args.shown}", file=sys.stderr)
-        trace = record(cfg, args.stream, should_stop=stop, progress=show_read)
-        if trace.events == 0 and trace.complete:
-            if trace.rejected:
-                raise DataError(f"{args.stream}: no usable events: all "
-                                f"{sum(trace.rejected.values()):,} lines rejected "
-                                f"({counted(trace.rejected)})")
-            raise DataError(f"{args.stream}: no events (an empty stream file)")
-        read_s = time.monotonic() - started
-        stop.flag = False
-        tuner = Tuner(trace, candidates, split=args.split, against=args.against)
-        result = tuner.run(should_stop=stop, progress=show_eval)
+        run = tune_stream(args.stream, candidates, split=args.split, against=args.against,
+                          should_stop=stop, read_progress=show_read, progress=show_eval,
+                          base=cfg, folds=args.folds)
+        result = run.result
+        traces = [t.trace for t in run.tuners]
+    if traces and traces[0].events == 0 and traces[0].complete:
+        # nothing usable: a wrong or empty file must not look like a tuning run
+        rejected = traces[0].rejected
+        if rejected:
+            raise DataError(f"{args.shown}: no usable events: all "
+                            f"{sum(rejected.values()):,} lines rejected ({counted(rejected)})")
+        raise DataError(f"{args.shown}: no events (an empty stream file)")
     if tty:
         print("\r" + " " * 60 + "\r", end="", file=sys.stderr)
     elapsed = time.monotonic() - started
     if loud:
         k = len(result.outcomes)
-        print(f"tune: {trace.events} events read in {read_s:.2f} s, {k} candidates evaluated "
-              f"in {elapsed - read_s:.2f} s ({k * trace.events / max(elapsed, 1e-9):,.0f} "
-              "candidate-events/s overall)", file=sys.stderr)
-        if trace.rejected:
-            print(f"tune: rejected lines: {counted(trace.rejected)}", file=sys.stderr)
+        print(f"tune: {result.events} events read {len(traces)} time(s) (once per scaler "
+              f"group), {k} candidates evaluated in {elapsed:.2f} s "
+              f"({k * result.events / max(elapsed, 1e-9):,.0f} candidate-events/s overall)",
+              file=sys.stderr)
+        if traces[0].rejected:
+            print(f"tune: rejected lines: {counted(traces[0].rejected)}", file=sys.stderr)
     best = result.best
     if best is not None and best.candidate.config is not None:
         if args.config_out is not None:
