@@ -3,7 +3,8 @@
 Engine level, no broker: the same engine the daemon and replay drive. The stream is invented
 (a sensor reading 0.8 × truth + 5 with a little noise, a spot reference every 5 readings); what
 is checked is the guards' behaviour, not accuracy. Configured numbers used in the checks:
-``gate_k = 4`` robust spreads, ``gate_run = 3`` suspects in a row make a level shift, warmup 3.
+``gate_k = 4`` robust spreads, ``gate_run = 3`` suspects in a row spanning ``shift_after = 600``
+s make a level shift, warmup 3.
 """
 
 from __future__ import annotations
@@ -33,7 +34,7 @@ def _config() -> Config:
         "sensors": {"ids": ["s1"], "defaults": {
             "inputs": ["raw"], "centre": {"raw": 40.0}, "scale": {"raw": 10.0}}},
         "learning": {"alpha": 0.5, "alpha_max": 1.0, "memory": 100, "warmup": 3,
-                     "gate_k": 4.0, "gate_run": GATE_RUN},
+                     "gate_k": 4.0, "gate_run": GATE_RUN, "shift_after": 600.0},
         "pairing": {"tolerance": 30.0, "buffer_span": 3600.0},
     })
 
@@ -197,3 +198,47 @@ class TestOldReferences:
         assert dup == "duplicate"
         assert model.updates == updates
         assert run.engine.counts["reference_out_of_order"] == 5
+
+
+class TestFlood:
+    def test_a_flood_of_agreeing_references_is_not_a_level_shift(self) -> None:
+        """10,000 references at 500 ± 5 within one second: gated or rate-limited, never learnt.
+
+        They agree with each other, so by count alone they would pass for a level shift; a run
+        must also span ``shift_after`` of event time, and at most ``max_references`` per
+        ``reference_interval`` reach learning.
+        """
+        run = Run(clean)
+        engine = run.engine
+        model = engine.model("s1")
+        assert model is not None
+        updates = model.updates
+        t = LAST_REF_T + 60.0
+        engine.process(Reading(t, "s1", {"raw": 0.8 * truth(600) + 5.0}))
+        rng = random.Random(3)
+        statuses: dict[str, int] = {}
+        for k in range(10_000):
+            for o in engine.on_reference(Reference(t + k * 0.93e-4, "s1",
+                                                   500.0 + rng.uniform(-5.0, 5.0))):
+                statuses[o.status] = statuses.get(o.status, 0) + 1
+        assert statuses.get("applied", 0) == statuses.get("level_shift", 0) == 0
+        assert statuses["gated"] == 60 and statuses["rate_limited"] == 10_000 - 60
+        assert model.updates == updates  # no step was taken
+        raw = 0.8 * truth(601) + 5.0
+        out = engine.process(Reading(t + 60.0, "s1", {"raw": raw}))[0]
+        assert abs(out.value - truth(601)) < 2.0  # not hijacked: still near the truth
+
+    def test_new_ids_past_sensors_max_get_no_state(self) -> None:
+        """With a pattern, ids past sensors.max are refused and counted; memory stays bounded."""
+        engine = Engine(parse_config({
+            "broker": {"client_id": "adversarial"},
+            "sensors": {"pattern": "s[0-9]+", "max": 50, "defaults": {
+                "inputs": ["raw"], "centre": {"raw": 40.0}, "scale": {"raw": 10.0}}},
+        }))
+        for k in range(200):
+            engine.process(Reading(T0 + k, f"s{k}", {"raw": 40.0}))
+            engine.on_reference(Reference(T0 + k, f"s{k}", 40.0))
+        assert len(engine.sensors()) == 50
+        assert engine.counts["reading_sensor_limit"] == 150
+        assert engine.counts["reference_sensor_limit"] == 150
+        assert engine.process(Reading(T0 + 500.0, "s7", {"raw": 41.0}))  # known ids still served

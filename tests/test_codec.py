@@ -171,6 +171,16 @@ class TestJsonCodec:
         assert JsonCodec(covariates={"temp": "temperature"}).decode_reading(
             "co2-1", self.codec.encode_reading(r)) == r
 
+    def test_unknown_fields_are_refused(self) -> None:
+        """A misspelt window or an unconfigured field is refused, never silently ignored."""
+        assert reason_of(self.codec.decode_reference, "no2-07",
+                         b'{"t": 1767225600, "value": 38.9, "windw": 60}') == "unknown_field"
+        assert reason_of(self.codec.decode_reading, "no2-07",
+                         b'{"t": 1767225600, "raw": 41.2, "temp": 21.4}') == "unknown_field"
+        ref = self.codec.decode_reference("no2-07",
+                                          b'{"t": 1767225600, "value": 38.9, "window": 60}')
+        assert ref.window == 60.0
+
     def test_custom_field_names(self) -> None:
         """Configured field names are read instead of the defaults."""
         codec = JsonCodec(time_field="ts", value_field="ppb", reference_field="ref",

@@ -18,7 +18,8 @@ from pathlib import Path
 import pytest
 
 from trimtab_sim.baselines import Baselines, baselines
-from trimtab_sim.realdata import DATA, SCHEDULES, Result, Year, load_year, run_workflow, table
+from trimtab_sim.realdata import Result, run_workflow, table
+from trimtab_sim.uci import DATA, SCHEDULES, Year, load_year
 
 ROOT = Path(__file__).resolve().parents[1]
 TARGET = {"hourly": 0.40, "weekly": 0.60, "daily": 0.62}

@@ -328,8 +328,9 @@ class TestHostileSensorIds:
         assert sorted(stats["sensors"]) == ["ok-1"]
         assert labels <= {"s1", "s2", "ok-1"} and "ok-1" in labels
         names = [p.name for p in Path(cfg.state.dir).iterdir()]
+        # fixed names, none from an id
         allowed = re.compile(r"store\.lock|checkpoint-\d{8,}\.json|journal-\d{8,}\.log"
-                             r"|subscriptions\.json|held\.log")  # fixed names, none from an id
+                             r"|subscriptions\.json|held\.log|outbox\.mark")
         assert all(allowed.fullmatch(n) for n in names), names
 
 

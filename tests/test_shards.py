@@ -78,8 +78,8 @@ class TestShardOf:
         assert all(200 <= c <= 300 for c in counts), counts
 
     def test_refuses_zero_shards(self) -> None:
-        """A shard count below one is a ValueError."""
-        with pytest.raises(ValueError, match="shard count 0"):
+        """A shard count below one is refused with the project's ConfigError."""
+        with pytest.raises(ConfigError, match="shard count 0"):
             shard_of("s1", 0)
 
 

@@ -151,6 +151,15 @@ class TestDrift:
         slope, icpt = np.polyfit(temp - 15.0, raw - truth, 1)
         assert (slope, icpt) == (pytest.approx(0.7, abs=0.01), pytest.approx(0.0, abs=0.02))
 
+    def test_seasonal_trend_moves_the_operating_range(self) -> None:
+        """temp_trend_per_day and rh_trend_per_day shift the daily means by trend × days."""
+        sc = scenario(days=30.0, weather={"temp_wander": 0.0, "rh_wander": 0.0,
+                                          "temp_trend_per_day": 0.5, "rh_trend_per_day": -0.4})
+        t, _, _, temp, rh = readings(sc)
+        first, last = t < 1.0, t >= 29.0
+        assert temp[last].mean() - temp[first].mean() == pytest.approx(0.5 * 29.0, abs=0.05)
+        assert rh[last].mean() - rh[first].mean() == pytest.approx(-0.4 * 29.0, abs=0.05)
+
     def test_noise_spread(self) -> None:
         """With only noise on, raw − truth has the configured standard deviation."""
         _, raw, truth, *_ = readings(scenario(sensor={"faults": {"noise": 1.5}}))

@@ -342,3 +342,26 @@ class TestStateStoreKill:
             assert kill_at < 200, "checkpoint never finished"
         assert kill_at > 8
         assert generations == {0, 1}  # crash points fell both before and after the rename
+
+
+class TestStateStoreValidation:
+    """A record the checksum accepts but the reader cannot use is named by file and offset."""
+
+    def test_wrong_shape_names_file_record_and_offset(self, tmp_path: Path) -> None:
+        """A CRC-valid record of the wrong shape: StateError with the journal, index and offset."""
+        from trimtab.journal import encode_record
+        from trimtab.records import record_to_event
+
+        directory = tmp_path / "state"
+        with StateStore(directory) as store:
+            store.recover()
+            store.append({"t": 1.0, "sensor": "s1", "reading": {"raw": 2.0}})
+        journal = directory / "journal-00000000.log"
+        first = journal.stat().st_size
+        with open(journal, "ab") as fh:
+            fh.write(encode_record({"t": "soon", "sensor": "s1", "reference": 3.0}))
+        with pytest.raises(StateError) as info, \
+                StateStore(directory, validate=record_to_event) as store:
+            store.recover()
+        text = str(info.value)
+        assert str(journal) in text and f"record 2 at byte offset {first}" in text

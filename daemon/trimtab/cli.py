@@ -1,6 +1,8 @@
 """The ``trimtab`` command line: one sub-command a module under ``trimtab.commands``.
 
-Exit codes live here only: 0 success, 1 a runtime failure, 2 bad usage or bad input.
+Exit codes live here only: 0 success, 1 a runtime failure, 2 bad usage or bad input, 3 a
+runtime fault of the daemon's state directory (``trimtab run`` cannot create, lock, write or
+recover it: read-only, full at start, failing, or its state damaged beyond repair).
 """
 
 from __future__ import annotations
@@ -12,8 +14,11 @@ import os
 import sys
 from collections.abc import Sequence
 
-from trimtab.errors import ConfigError, TrimtabError
+from trimtab.errors import ConfigError, StateFault, TrimtabError
 from trimtab.logs import configure_logging
+
+EXIT_STATE = 3
+"""The state directory cannot be used; systemd restarts the unit after a delay (see the unit)."""
 
 # sub-command name -> module under trimtab.commands providing add_arguments(p) and run(args) -> int
 COMMANDS: dict[str, tuple[str, str]] = {
@@ -66,6 +71,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         for line in exc.errors:
             print(f"trimtab {args.command}: {line}", file=sys.stderr)
         return 2
+    except StateFault as exc:
+        print(f"trimtab {args.command}: {exc}", file=sys.stderr)
+        return EXIT_STATE
     except TrimtabError as exc:
         print(f"trimtab {args.command}: {exc}", file=sys.stderr)
         return 2

@@ -13,6 +13,7 @@ import json
 from collections.abc import Mapping
 from typing import Protocol
 
+from trimtab.errors import DecodeError
 from trimtab.jsonfields import (
     CORRECTED_FIELDS,
     MAX_ABS,
@@ -61,7 +62,7 @@ REASONS = frozenset({
     "bad_flag", "bad_json", "bad_name", "bad_record", "bad_sensor_id", "bad_time",
     "bad_window", "duplicate_field", "duplicate_name", "missing_field", "non_finite",
     "not_array", "not_object", "out_of_range", "oversize", "relative_time", "time_mismatch",
-    "unsupported_field", "unsupported_version", "wrong_type",
+    "unknown_field", "unsupported_field", "unsupported_version", "wrong_type",
 })  # fmt: skip
 """Every ``DecodeError.reason`` the codecs raise (``bad_sensor_id`` comes from ``topics``)."""
 
@@ -86,7 +87,9 @@ class JsonCodec:
     A reading needs the time and the raw value, and carries those covariate fields it has
     (``covariates`` maps the model's input name to the payload field; the engine refuses a
     reading that lacks one its sensor's model needs); a reference needs the time and the
-    value, and may carry a window (null means none). Other fields are ignored. Corrected
+    value, and may carry a window (null means none). Any other field is refused
+    (``unknown_field``), as in stream files: a misspelt ``"windw"`` would otherwise turn a
+    window mean into a spot reference without a word. Corrected
     values are written with the fixed names of ``CORRECTED_FIELDS`` and repr floats, so they
     decode bit for bit.
     """
@@ -109,9 +112,19 @@ class JsonCodec:
         self.reference_field = reference_field
         self.window_field = window_field
         self.max_bytes = max_bytes
+        self._reading_fields = frozenset([time_field, value_field, *self.covariates.values()])
+        self._reference_fields = frozenset([time_field, reference_field, window_field])
 
     def _object(self, payload: bytes | bytearray) -> dict[str, object]:
         return as_object(parse_json(payload, self.max_bytes), "payload")
+
+    @staticmethod
+    def _only(obj: Mapping[str, object], allowed: frozenset[str], what: str) -> None:
+        if obj.keys() <= allowed:
+            return
+        extra = sorted(set(obj) - allowed)
+        raise DecodeError("unknown_field", f"fields {extra!r:.200} are not part of a {what} "
+                          f"(known: {sorted(allowed)})")
 
     def _field(self, obj: Mapping[str, object], key: str) -> float:
         return to_value(need(obj, key), f"field {key!r}")
@@ -120,6 +133,7 @@ class JsonCodec:
         """The reading of ``sensor`` (from the topic) carried by ``payload``."""
         validate_sensor_id(sensor)
         obj = self._object(payload)
+        self._only(obj, self._reading_fields, "reading")
         t = to_time(need(obj, self.time_field), f"field {self.time_field!r}")
         inputs = {"raw": self._field(obj, self.value_field)}
         for name, key in self.covariates.items():
@@ -131,6 +145,7 @@ class JsonCodec:
         """The reference value for ``sensor`` carried by ``payload``."""
         validate_sensor_id(sensor)
         obj = self._object(payload)
+        self._only(obj, self._reference_fields, "reference")
         return Reference(
             t=to_time(need(obj, self.time_field), f"field {self.time_field!r}"),
             sensor=sensor,

@@ -61,15 +61,11 @@ __all__ = [
     "StatusSettings",
     "TlsSettings",
     "TopicSettings",
-    "derived_figures",
     "file_problems",
     "load_config",
     "parse_config",
     "restart_required",
 ]
-
-derived_figures = stability.derived_figures
-
 
 class TlsSettings(Section):
     """TLS to the broker; with no ``ca_file`` the system's trust store is used."""
@@ -116,6 +112,11 @@ class BrokerSettings(Section):
     )
     session_expiry: Annotated[int, Strict(), Field(ge=1, le=4294967295)] = Field(
         default=86400, description="MQTT 5 session expiry interval in seconds (kept while away)"
+    )
+    publish_window: Annotated[int, Strict(), Field(ge=1, le=32768)] = Field(
+        default=1000,
+        description="corrected values published but not yet acknowledged by the broker, at most"
+        " (input waits beyond it)",
     )
     username: Str | None = Field(default=None, description="user name for the broker")
     password_env: (
@@ -274,6 +275,12 @@ class LearningSettings(Section):
     gate_k: PosFloat = Field(default=5.0, description="suspect beyond this many robust spreads")
     gate_run: PosInt = Field(
         default=3, description="suspects in a row on one side accepted as a shift"
+    )
+    max_references: PosInt = Field(
+        default=60, description="most references a sensor learns from per reference_interval"
+    )
+    shift_after: NonNegFloat = Field(
+        default=3600.0, description="s of event time a run of suspects must span to be a shift"
     )
     warmup: Annotated[int, Strict(), Field(ge=0)] = Field(
         default=5, description="references of warmup"

@@ -149,6 +149,8 @@ class SensorState:
         "n_preq",
         "pending",
         "ranges",
+        "ref_window",
+        "ref_window_n",
         "scaler_rows",
         "settings",
         "spec",
@@ -172,6 +174,8 @@ class SensorState:
         self.n_preq = 0
         self.warm = False
         self.ranges: RangeTracker | None = None
+        self.ref_window = -1
+        self.ref_window_n = 0
         self.band_k = 0.0
         self.band_hit = 0
         self.band_n = 0
@@ -200,7 +204,7 @@ class Engine:
     def _guard_settings(cfg: Config) -> GuardSettings:
         lc = cfg.learning
         return GuardSettings(
-            gate_k=lc.gate_k, gate_run=lc.gate_run, warmup=lc.warmup,
+            gate_k=lc.gate_k, gate_run=lc.gate_run, warmup=lc.warmup, shift_after=lc.shift_after,
             snapshot_every=lc.snapshot_every, rollback_factor=lc.rollback_factor,
             alpha=lc.alpha, alpha_min=lc.alpha_min, error_window=lc.error_window,
             alpha_recovery=lc.alpha_recovery,
@@ -327,19 +331,27 @@ class Engine:
         self.on_reference(event)
         return []
 
-    def _allowed(self, sensor: str) -> bool:
-        """``Config.sensor_allowed``, remembered for served sensors (they get state anyway)."""
+    def _refusal(self, sensor: str) -> str | None:
+        """Why a sensor is not served (None: it is): not configured, or past ``sensors.max``.
+
+        ``Config.sensor_allowed`` is remembered for served sensors (they get state anyway).
+        A pattern can name any number of ids: past ``sensors.max`` sensors with state, a new
+        id gets none, so traffic on made-up ids cannot grow memory without bound.
+        """
         if sensor in self._served:
-            return True
+            return None
         if not self._cfg.sensor_allowed(sensor):
-            return False
+            return "unknown_sensor"
+        if sensor not in self._sensors and len(self._sensors) >= self._cfg.sensors.max:
+            return "sensor_limit"
         self._served.add(sensor)
-        return True
+        return None
 
     def on_reading(self, r: Reading) -> Corrected | None:
         """Correct one reading and buffer its inputs for pairing."""
-        if not self._allowed(r.sensor):
-            self.counts["reading_unknown_sensor"] += 1
+        refused = self._refusal(r.sensor)
+        if refused is not None:
+            self.counts[f"reading_{refused}"] += 1
             return None
         st = self._state(r.sensor)
         inputs = r.inputs
@@ -409,8 +421,9 @@ class Engine:
         return out
 
     def _reference_for(self, sensor: str, ref: Reference) -> tuple[str, float | None]:
-        if not self._allowed(sensor):
-            return "unknown_sensor", None
+        refused = self._refusal(sensor)
+        if refused is not None:
+            return refused, None
         if not (math.isfinite(ref.t) and math.isfinite(ref.value)):
             return "non_finite", None  # a NaN time would also defeat the at-most-once check
         st = self._state(sensor)
@@ -424,6 +437,15 @@ class Engine:
                       tolerance=pc.tolerance)
         if not isinstance(paired, Paired):
             return paired.reason, None
+        # At most learning.max_references per reference_interval reach learning: a flood of
+        # references (a looping instrument, a replayed log) cannot take over a model.
+        lc = self._cfg.learning
+        window = math.floor(ref.t / lc.reference_interval)
+        if window != st.ref_window:
+            st.ref_window, st.ref_window_n = window, 0
+        if st.ref_window_n >= lc.max_references:
+            return "rate_limited", None
+        st.ref_window_n += 1
         if st.model is None:
             # The scaler is still being fixed from the first readings: keep the paired
             # reference (bounded) and learn from it as soon as the model exists.
@@ -457,9 +479,9 @@ class Engine:
         lift = 0.0
         if lc.step_adapt == "gap" and st.last_applied_t is not None:
             lift = gap_fraction(ref_t - st.last_applied_t, lc.step_gap)
-        verdict = st.guard.judge(residual, model.spread, self._gs)
+        verdict = st.guard.judge(residual, model.spread, self._gs, ref_t)
         if verdict == "suspect":
-            st.guard.hold(phi, y)
+            st.guard.hold(phi, y, self._gs)
             return "gated", residual
         if verdict == "shift" and st.guard.flat_run(y):
             return "stuck", residual  # the run stays held; a differing value can still end it
@@ -564,6 +586,7 @@ class Engine:
             "warm": st.warm,
             "ranges": None if st.ranges is None else st.ranges.to_dict(),
             "band": [st.band_k, st.band_hit, st.band_n],
+            "ref_window": [st.ref_window, st.ref_window_n],
         }
 
     def _load_sensor(self, name: str, d: Mapping[str, Any]) -> None:
@@ -588,6 +611,7 @@ class Engine:
         st.ranges = None if d["ranges"] is None else RangeTracker.from_dict(d["ranges"])
         band_k, band_hit, band_n = d["band"]
         st.band_k, st.band_hit, st.band_n = float(band_k), int(band_hit), int(band_n)
+        st.ref_window, st.ref_window_n = (int(v) for v in d["ref_window"])
 
     def state_dict(self) -> dict[str, Any]:
         """The whole state as plain JSON-able data; floats round-trip exactly."""
@@ -647,6 +671,7 @@ class Engine:
                 "rmse": rmse,
                 "alpha": st.guard.alpha,
                 "rollbacks": st.guard.rollbacks,
+                "recoveries": st.guard.recoveries,
                 "held": st.guard.held,
                 "band_coverage": st.band_hit / st.band_n if st.band_n else None,
                 "scaler": None if st.model is None else st.model.scaler.to_dict(),

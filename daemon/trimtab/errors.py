@@ -39,5 +39,10 @@ class StateError(TrimtabError):
     """Persistent state (journal, checkpoint) is unreadable or inconsistent."""
 
 
+class StateFault(StateError):
+    """The daemon's state directory cannot be used (read-only, full at start, failing, or its
+    state unrecoverable): a runtime fault of the gateway, not bad usage; its own exit code."""
+
+
 class TransportError(TrimtabError):
     """The MQTT transport failed in a way the caller must hear about (e.g. TLS set-up)."""

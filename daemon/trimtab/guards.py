@@ -5,10 +5,13 @@ them in practice (a broken reference instrument, a sensor swapped without notice
 
 * **gate** — a reference whose prequential residual exceeds ``gate_k`` robust spreads (the
   larger of the model's recent spread and the long-window scale σ_L below) is held as a
-  *suspect* and not applied. ``gate_run`` suspects in a row on the same side are a real
-  level shift: they are all applied, in order, and the error baseline restarts. A run whose
-  reference values are all one repeated number is a *stuck* instrument (a reference frozen
-  at zero or at its last value), not a shift: it stays gated until a value differs.
+  *suspect* and not applied. ``gate_run`` suspects in a row on the same side, spanning at
+  least ``shift_after`` seconds of event time (a burst of references that agree with each
+  other in a second is not a new regime), are a real level shift: the latest ``gate_run``
+  − 1 held suspects and this one are applied, in order, and the error baseline restarts. A
+  run whose reference values are all one repeated number is a *stuck* instrument (a
+  reference frozen at zero or at its last value), not a shift: it stays gated until a value
+  differs.
 * **snapshot / rollback** — every ``snapshot_every`` applied references the model is copied as
   the last good one. The recent error (an exponentially weighted mean of squared prequential
   residuals over about ``snapshot_every`` references) is compared with a robust long-window
@@ -69,6 +72,7 @@ class GuardSettings:
     alpha_min: float
     error_window: int = 200
     alpha_recovery: float = 0.0
+    shift_after: float = 0.0
 
 
 @dataclass(slots=True)
@@ -79,6 +83,8 @@ class Guard:
     applied: int = 0
     run_sign: int = 0
     suspects: list[tuple[list[float], float]] = field(default_factory=list)
+    run_t0: float | None = None
+    """Event time of the first suspect of the current run."""
     recent_ms: float = 0.0
     snapshot: dict[str, Any] | None = None
     snapshot_ms: float = 0.0
@@ -88,9 +94,11 @@ class Guard:
     fresh: bool = True
     long_abs: float = 0.0
     long_n: int = 0
+    recoveries: int = 0
+    """References after which α moved back toward its setting."""
 
-    def judge(self, residual: float, spread: float, s: GuardSettings) -> Verdict:
-        """Decide what to do with a paired reference whose prequential residual is given."""
+    def judge(self, residual: float, spread: float, s: GuardSettings, t: float = 0.0) -> Verdict:
+        """Decide what to do with a paired reference (event time t, prequential residual)."""
         gate_active = self.applied >= s.warmup and spread > 0.0
         # the larger of the recent spread and the long-window scale: a calm night's spread
         # alone would gate the next ordinary rush hour
@@ -98,18 +106,24 @@ class Guard:
         if not gate_active or abs(residual) <= s.gate_k * scale:
             self.run_sign = 0
             self.suspects.clear()
+            self.run_t0 = None
             return "apply"
         sign = 1 if residual > 0 else -1
         if sign != self.run_sign:
             self.run_sign = sign
             self.suspects.clear()
-        if len(self.suspects) + 1 >= s.gate_run:
+            self.run_t0 = t
+        if self.run_t0 is None:
+            self.run_t0 = t
+        if len(self.suspects) + 1 >= s.gate_run and t - self.run_t0 >= s.shift_after:
             return "shift"
         return "suspect"
 
-    def hold(self, phi: list[float], y: float) -> None:
-        """Keep a suspect reference until the run decides (bounded by ``gate_run``)."""
+    def hold(self, phi: list[float], y: float, s: GuardSettings) -> None:
+        """Keep a suspect reference until the run decides: the latest ``gate_run`` − 1 only."""
         self.suspects.append((phi, y))
+        if len(self.suspects) > max(1, s.gate_run - 1):
+            del self.suspects[0]
 
     def flat_run(self, y: float) -> bool:
         """Whether the held suspects and ``y`` repeat one value exactly: stuck, not shifted."""
@@ -119,6 +133,7 @@ class Guard:
         """Hand over the held suspects (oldest first) and end the run."""
         held, self.suspects = self.suspects, []
         self.run_sign = 0
+        self.run_t0 = None
         return held
 
     def record(self, residual: float, s: GuardSettings) -> None:
@@ -143,8 +158,9 @@ class Guard:
 
     def recover(self, s: GuardSettings) -> None:
         """After a good reference: α moves ``alpha_recovery`` of the way back to its setting."""
-        if self.alpha < s.alpha:
+        if self.alpha < s.alpha and s.alpha_recovery > 0.0:
             self.alpha = min(s.alpha, self.alpha + s.alpha_recovery * (s.alpha - self.alpha))
+            self.recoveries += 1
 
     def due_snapshot(self, s: GuardSettings) -> bool:
         """Whether enough references were applied since the last good snapshot."""
@@ -165,6 +181,7 @@ class Guard:
         self.since_snapshot = 0
         self.suspects.clear()
         self.run_sign = 0
+        self.run_t0 = None
         return self.snapshot
 
     def restart_baseline(self, model_state: dict[str, Any]) -> None:
@@ -196,6 +213,8 @@ class Guard:
             "fresh": self.fresh,
             "long_abs": self.long_abs,
             "long_n": self.long_n,
+            "recoveries": self.recoveries,
+            "run_t0": self.run_t0,
         }
 
     @classmethod
@@ -215,4 +234,6 @@ class Guard:
             fresh=bool(d["fresh"]),
             long_abs=float(d["long_abs"]),
             long_n=int(d["long_n"]),
+            recoveries=int(d["recoveries"]),
+            run_t0=None if d["run_t0"] is None else float(d["run_t0"]),
         )

@@ -96,8 +96,12 @@ def _decode_line(line: bytes) -> tuple[dict[str, Any] | None, str, bool]:
     return value, "", True
 
 
-def scan_journal(data: bytes, path: Path) -> tuple[list[dict[str, Any]], JournalTail]:
-    """Decode journal bytes ``data`` read from ``path`` (named in errors)."""
+def scan_journal(data: bytes, path: Path,
+                 offsets: list[int] | None = None) -> tuple[list[dict[str, Any]], JournalTail]:
+    """Decode journal bytes ``data`` read from ``path`` (named in errors).
+
+    When ``offsets`` is given, the byte offset of each record returned is appended to it.
+    """
     records: list[dict[str, Any]] = []
     pos = 0
     line_no = 0
@@ -120,21 +124,24 @@ def scan_journal(data: bytes, path: Path) -> tuple[list[dict[str, Any]], Journal
                 "damage inside the journal, not a write torn by a crash"
             )
         records.append(record)
+        if offsets is not None:
+            offsets.append(pos)
         pos = end + 1
     return records, JournalTail(pos, 0)
 
 
-def read_journal(path: Path) -> tuple[list[dict[str, Any]], JournalTail]:
+def read_journal(path: Path,
+                 offsets: list[int] | None = None) -> tuple[list[dict[str, Any]], JournalTail]:
     """Every good record of the journal at ``path``, and what follows the last of them.
 
     Never modifies the file. ``StateError`` if it cannot be read or is damaged before its
-    final line.
+    final line. ``offsets``, when given, receives each record's byte offset.
     """
     try:
         data = Path(path).read_bytes()
     except OSError as exc:
         raise StateError(f"journal {path}: cannot read: {exc}") from exc
-    return scan_journal(data, Path(path))
+    return scan_journal(data, Path(path), offsets)
 
 
 def fsync_directory(directory: Path) -> None:

@@ -18,7 +18,8 @@ Families (see the README's operations section for the full table):
 
 - ``trimtab_messages_received_total{outcome}``: processed, rejected, foreign, held, queue_full
 - ``trimtab_messages_rejected_total{reason}``: decode failures by reason
-- ``trimtab_messages_published_total{outcome}``: sent, failed (corrected values)
+- ``trimtab_messages_published_total{outcome}``: sent, delivered, deferred, failed, refused
+  (corrected values, from the service's outbox)
 - ``trimtab_readings_total{outcome}`` and ``trimtab_references_total{outcome,reason}``
 - ``trimtab_processing_latency_seconds``: receipt on the network thread to acknowledgement
 - ``trimtab_mqtt_connected``, ``trimtab_mqtt_reconnects_total``

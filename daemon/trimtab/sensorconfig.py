@@ -11,6 +11,7 @@ import difflib
 import json
 import re
 import types
+import zlib
 from collections.abc import Iterator
 from typing import Annotated, Any, Literal, Union, get_args, get_origin
 
@@ -29,8 +30,7 @@ from pydantic import (
 )
 from pydantic_core import PydanticCustomError
 
-from trimtab.errors import DecodeError
-from trimtab.shards import shard_of
+from trimtab.errors import ConfigError, DecodeError
 from trimtab.terms import TermSpec
 from trimtab.topics import SENSOR_ID_PATTERN, validate_sensor_id
 
@@ -107,6 +107,13 @@ FieldName = Annotated[str, Strict(), Field(pattern=r"^[^\x00-\x1f]{1,64}$")]
 Prior = Annotated[
     Literal["factory", "zero"] | tuple[Annotated[float, Strict()], ...], WrapValidator(_prior)
 ]
+
+
+def shard_of(sensor_id: str, count: int) -> int:
+    """The hash shard of a sensor id: CRC-32 of its UTF-8 bytes modulo ``count``."""
+    if count < 1:
+        raise ConfigError(f"shard count {count} must be ≥ 1")
+    return zlib.crc32(sensor_id.encode("utf-8")) % count
 
 
 class Section(BaseModel):
@@ -238,6 +245,9 @@ class SensorsSettings(Section):
     """Which sensors this daemon serves, their model settings, and shared reference streams."""
 
     ids: tuple[SensorId, ...] = Field(default=(), description="sensor ids served")
+    max: PosInt = Field(
+        default=10000, description="most sensors with state; a new id past it is refused"
+    )
     pattern: Str | None = Field(
         default=None, description="regex; ids it matches in full are served too"
     )

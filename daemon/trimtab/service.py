@@ -9,6 +9,7 @@ engine. Clocks and files live here; the engine stays pure.
 
 from __future__ import annotations
 
+import errno
 import json
 import queue
 import signal
@@ -16,7 +17,7 @@ import threading
 import time
 from collections import Counter
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from types import FrameType
 from typing import TYPE_CHECKING, Any
@@ -24,13 +25,14 @@ from typing import TYPE_CHECKING, Any
 from trimtab.engine import Engine
 from trimtab.errors import ConfigError, DecodeError, StateError
 from trimtab.logs import configure_logging, get_logger
-from trimtab.messages import Corrected, Reading, Reference
+from trimtab.messages import Reading, Reference
 from trimtab.metrics import Metrics
 from trimtab.notify import Notifier
+from trimtab.outbox import Mark, Outbox, OutboxMark, PublishResult, stored_output, with_output
 from trimtab.records import event_to_record, record_to_event
 from trimtab.shards import HeldFile, SubscriptionLedger, plan_subscriptions, release
 from trimtab.statestore import StateStore
-from trimtab.transport import Endpoint, Transport, read_password
+from trimtab.transport import Backoff, Endpoint, Transport, read_password
 from trimtab.wiring import make_codec, make_engine, status_topic, topic_templates
 
 if TYPE_CHECKING:
@@ -42,6 +44,41 @@ QUEUE_LIMIT = 20000
 BATCH = 512
 BURST_QUIET = 10.0
 METRICS_REFRESH = 2.0
+MARK_EVERY = 0.2
+"""Seconds between writes of the outbox mark (what the broker has taken)."""
+STOP_DRAIN = 10.0
+"""Seconds a stopping daemon waits for the broker to take the outbox's values."""
+PUBLISH_OUTCOMES = {"sent": "handed_to_client", "delivered": "delivered",
+                    "deferred": "publish_deferred", "failed": "publish_failed",
+                    "refused": "refused_by_broker"}
+"""Metrics outcome of ``trimtab_messages_published_total`` → outbox counter."""
+STORAGE_ERRNOS = frozenset({errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EIO, errno.EACCES,
+                            errno.EPERM})
+"""Errors of the state directory that pause the daemon (they can clear) instead of ending it."""
+
+
+def storage_fault(exc: BaseException) -> OSError | None:
+    """The OSError of a full, read-only or failing file system behind ``exc``, if that is it."""
+    seen: BaseException | None = exc
+    while seen is not None:
+        if isinstance(seen, OSError) and seen.errno in STORAGE_ERRNOS:
+            return seen
+        seen = seen.__cause__
+    return None
+
+
+@dataclass(slots=True)
+class Processed:
+    """A batch the engine has handled, to be made durable, then acknowledged and published."""
+
+    batch: list[Inbound]
+    records: list[dict[str, Any]]
+    outputs: list[tuple[str, bytes]]
+    received: Counter[str]
+    held: list[dict[str, Any]] = field(default_factory=list)
+    has_reference: bool = False
+    journaled: bool = False
+    held_written: bool = False
 
 
 @dataclass(frozen=True, slots=True)
@@ -107,19 +144,35 @@ class Service:
         self.codec = make_codec(cfg)
         self.t_readings, self.t_references, self.t_corrected = topic_templates(cfg)
         self.engine: Engine = make_engine(cfg)
-        self.store = StateStore(Path(cfg.state.dir), durability=cfg.state.durability)
+        self.store = StateStore(Path(cfg.state.dir), durability=cfg.state.durability,
+                                validate=record_to_event)
         self.rejects = RejectLog()
         self.inbox: queue.Queue[Inbound] = queue.Queue(QUEUE_LIMIT)
         self.dropped = 0
         self.inbox_full = 0
         self.foreign = 0
+        self._inbox_logged: dict[str, float] = {}
         self.held = HeldFile(Path(cfg.state.dir), cfg.state.durability)
         self.metrics = (Metrics(cfg.metrics, pinned=cfg.sensors.ids)
                         if cfg.metrics.enabled else None)
         self._checkpoint_at = time.monotonic()
         self._journal_since: float | None = None
         self._journal_records = 0
-        self._backlog: list[Corrected] = []
+        self.outbox = Outbox(cfg.broker.publish_window)
+        self.mark = OutboxMark(Path(cfg.state.dir))
+        self._mark_at = 0.0
+        self._mark_failed = False
+        self._current_records = 0
+        self._published_seen: dict[str, int] = {}
+        self.journal_lost: dict[str, int] = {"bytes": 0, "records": 0}
+        # Storage faults: the batch that could not be made durable waits here, unacknowledged,
+        # and is written again with backoff; nothing more is taken in meanwhile.
+        self._stalled: Processed | None = None
+        self._stalled_since = 0.0
+        self._retry_at = 0.0
+        self._storage_backoff = Backoff(first=0.5, cap=30.0)
+        self.storage_pauses = 0
+        self.recovery_differs = 0
         self._stop = threading.Event()
         self._reload = threading.Event()
         self._dirty = False
@@ -135,41 +188,105 @@ class Service:
         except queue.Full:
             # Backpressure: the network thread waits, so TCP holds the backlog at the broker.
             self.inbox_full += 1
+            self._note_inbox("inbox_full_wait", self.inbox_full)
         try:
             self.inbox.put(item, timeout=1.0)
         except queue.Full:
             # Not acknowledged: a QoS 1 message comes again after the next reconnect.
             self.dropped += 1
+            self._note_inbox("inbox_full_dropped", self.dropped)
+
+    def _note_inbox(self, event: str, total: int) -> None:
+        """Log an inbox wait or drop at most every BURST_QUIET s (network thread; never raises)."""
+        now = time.monotonic()
+        if now - self._inbox_logged.get(event, -BURST_QUIET) >= BURST_QUIET:
+            self._inbox_logged[event] = now
+            log.warning(event, total=total, limit=QUEUE_LIMIT,
+                        hint="not acknowledged: delivered again after the next reconnect"
+                        if event == "inbox_full_dropped" else "the broker holds the backlog")
 
     # -- recovery ------------------------------------------------------------------------------
 
     def recover(self) -> int:
         """Load the newest good checkpoint and re-feed the journal; returns records replayed."""
+        mark = self.mark.read()
         rec = self.store.recover()
+        self._current_records = rec.current
+        self._check_journal_length(mark, rec.current, rec.torn_bytes)
         if rec.state is not None:
             self.engine.load_state(rec.state)
         for record in rec.records:
-            self.engine.process(record_to_event(record))
+            outputs = self.engine.process(record_to_event(record))
+            stored = stored_output(record)
+            if stored is not None and outputs and \
+                    self.codec.encode_corrected(outputs[0]) != stored:
+                # The journaled value is the one promised; it is the one published again.
+                self.recovery_differs += 1
+        if self.recovery_differs:
+            log.warning("recovery_output_differs", values=self.recovery_differs,
+                        hint="the settings changed since they were journaled; the journaled "
+                        "values are published")
+        current = rec.records[len(rec.records) - rec.current:]
+        for record in rec.records[:len(rec.records) - rec.current]:
+            self.outbox.remember(record)
+        queued = self.outbox.restore(self.store.generation, current,
+                                     (mark.generation, mark.done), self.t_corrected.format)
         log.info("state_recovered", generation=rec.generation, journal_records=len(rec.records),
-                 torn_bytes=rec.torn_bytes, sensors=len(self.engine.sensors()))
+                 torn_bytes=rec.torn_bytes, sensors=len(self.engine.sensors()),
+                 outputs_to_publish=queued)
         self._journal_records = len(rec.records)
         self._journal_since = time.monotonic() if rec.records else None
         return len(rec.records)
 
+    def _check_journal_length(self, mark: Mark, records: int, torn: int) -> None:
+        """Say exactly what is missing when the journal is shorter than the mark saw it."""
+        if mark.generation != self.store.generation:
+            return
+        size = self.store.journal_size
+        lost_bytes = max(0, mark.journal_bytes - size)
+        lost_records = max(0, mark.journal_records - records)
+        if not (lost_bytes or lost_records):
+            return
+        self.journal_lost = {"bytes": lost_bytes, "records": lost_records}
+        log.error("journal_data_lost", path=str(self.store.journal_path(mark.generation)),
+                  offset=size, bytes_lost=lost_bytes, records_lost=lost_records,
+                  torn_bytes_cut=torn,
+                  hint="the journal ends before what this daemon had written to it (cut or "
+                  "lost in a power failure); counted from the outbox mark, so at least this "
+                  "much is gone")
+
     def release_held(self) -> int:
         """Feed held events of sensors served now (their state imported) first; returns how many.
 
-        See :func:`trimtab.shards.release`; their corrected values are published once connected.
+        See :func:`trimtab.shards.release`. The events fed are journaled, each reading with its
+        corrected value, and made durable before the held file lets go of them; the values go
+        to the outbox like any other.
         """
         records = self.held.records()
         if not records:
             return 0
-        out = release(records, self.cfg, self.engine, self.store.append)
-        if out.fed:
-            self.checkpoint()
+        fed: list[dict[str, Any]] = []
+        out = release(records, self.cfg, self.engine, lambda r: fed.append(dict(r)))
+        made = {(c.sensor, c.t): c for c in out.corrected}
+        outputs: list[tuple[str, bytes]] = []
+        for record in fed:
+            c = made.pop((str(record["sensor"]), float(record["t"])), None) \
+                if "reading" in record else None
+            if c is not None:
+                payload = self.codec.encode_corrected(c)
+                with_output(record, payload)
+                outputs.append((self.t_corrected.format(c.sensor), payload))
+            self.outbox.remember(record)
+        if fed:
+            self.store.append_many(fed)
+            self.store.sync()
+            self._current_records += len(fed)
+            self._dirty = True
+            for topic, payload in outputs:
+                self.outbox.add(topic, payload)
         self.held.keep_only(out.keep)
-        self._backlog.extend(out.corrected)
-        log.info("held_events_released", fed=out.fed, still_held=len(out.keep))
+        log.info("held_events_released", fed=out.fed, still_held=len(out.keep),
+                 values=len(outputs))
         return out.fed
 
     # -- message handling ----------------------------------------------------------------------
@@ -199,14 +316,18 @@ class Service:
         raise DecodeError("unknown_topic", msg.topic)
 
     def handle_batch(self, batch: list[Inbound]) -> None:
-        """Decode, journal, process and publish a batch; make it durable; then acknowledge."""
-        assert self.transport is not None
-        qos_out = self.cfg.topics.qos
-        has_reference = held = False
-        received: Counter[str] = Counter()
-        published: Counter[str] = Counter()
-        records: list[dict[str, Any]] = []
-        events: list[Reading | Reference] = []
+        """Decode and process a batch, journal it with its outputs, then acknowledge it.
+
+        Order: the engine handles the batch; the batch's records, each reading with its
+        corrected value, are journaled with one write (and synced when it holds a reference);
+        only then are the inputs acknowledged and their values handed to the outbox. A storage
+        fault leaves the batch unacknowledged and pauses intake until it can be written.
+        """
+        self._commit(self._process(batch))
+
+    def _process(self, batch: list[Inbound]) -> Processed:
+        work = Processed(batch, [], [], Counter())
+        received = work.received
         for msg in batch:
             try:
                 event, serve, hold = self.decode(msg)
@@ -220,42 +341,105 @@ class Service:
                 continue
             record = event_to_record(event)
             if hold:
-                self.held.append(record)
-                held = True
+                work.held.append(dict(record))
             if not serve:
                 received["held"] += 1
                 continue
+            if self.outbox.seen(record):
+                # Journaled and processed before; its acknowledgement did not reach the broker.
+                # Its value is in the outbox or delivered: acknowledged, never recomputed.
+                received["redelivered"] += 1
+                continue
+            self.outbox.remember(record)
             received["processed"] += 1
-            records.append(record)
-            events.append(event)
-        if records:
-            # The whole batch is journaled, with one write, before the engine sees any of it.
-            self.store.append_many(records)
-            self._journal_records += len(records)
-            if self._journal_since is None:
-                self._journal_since = time.monotonic()
-            self._dirty = True
-        for event in events:
             if isinstance(event, Reference):
-                has_reference = True
+                work.has_reference = True
                 outcomes = self.engine.on_reference(event)
                 if self.metrics is not None:
                     self.metrics.references(outcomes)
-                continue
-            c = self.engine.on_reading(event)
-            if c is not None:
-                info = self.transport.publish(self.t_corrected.format(c.sensor),
-                                              self.codec.encode_corrected(c), qos=qos_out)
-                published["sent" if info.rc == 0 else "failed"] += 1
-        if has_reference:
-            self.store.sync()
-        if held:
-            self.held.sync()
-        for msg in batch:
+            else:
+                c = self.engine.on_reading(event)
+                if c is not None:
+                    payload = self.codec.encode_corrected(c)
+                    with_output(record, payload)
+                    work.outputs.append((self.t_corrected.format(c.sensor), payload))
+            work.records.append(record)
+        return work
+
+    def _commit(self, work: Processed) -> bool:
+        """Make ``work`` durable, then acknowledge and publish it; False if storage failed."""
+        assert self.transport is not None
+        try:
+            if work.held and not work.held_written:
+                self.held.append_many(work.held)
+                work.held_written = True
+            if work.records and not work.journaled:
+                self.store.append_many(work.records)
+                work.journaled = True
+                self._journal_records += len(work.records)
+                self._current_records += len(work.records)
+                if self._journal_since is None:
+                    self._journal_since = time.monotonic()
+                self._dirty = True
+            if work.has_reference:
+                self.store.sync()
+            if work.held:
+                self.held.sync()
+        except StateError as exc:
+            fault = storage_fault(exc)
+            if fault is None:
+                raise
+            self._stall(work, fault, str(exc))
+            return False
+        if self._stalled is not None:
+            self._resume()
+        for msg in work.batch:
             self.transport.ack(msg.mid, msg.qos)
+        # Acknowledgements are queued before the values: once the broker has acknowledged a
+        # value, it has every acknowledgement sent before it (one TCP stream, in order).
+        for topic, payload in work.outputs:
+            self.outbox.add(topic, payload)
+        self.outbox.pump()
         if self.metrics is not None:
             now = time.monotonic()
-            self.metrics.batch(received, published, (now - m.arrived for m in batch))
+            self.metrics.batch(work.received, self._published_delta(),
+                               (now - m.arrived for m in work.batch))
+        return True
+
+    def _published_delta(self) -> dict[str, int]:
+        """What the outbox did since the last call, by metrics outcome."""
+        counts = self.outbox.stats()
+        delta: dict[str, int] = {}
+        for outcome, key in PUBLISH_OUTCOMES.items():
+            value = int(counts.get(key, 0))
+            if value != self._published_seen.get(outcome, 0):
+                delta[outcome] = value - self._published_seen.get(outcome, 0)
+                self._published_seen[outcome] = value
+        return delta
+
+    # -- storage faults ------------------------------------------------------------------------
+
+    def _stall(self, work: Processed, fault: OSError, detail: str) -> None:
+        now = time.monotonic()
+        if self._stalled is None:
+            self.storage_pauses += 1
+            self._stalled_since = now
+            self._storage_backoff.reset()
+            log.error("storage_unavailable", path=fault.filename or str(self.cfg.state.dir),
+                      error=fault.strerror, errno=errno.errorcode.get(fault.errno or 0, "?"),
+                      detail=detail[:300], waiting=len(work.batch),
+                      hint="inputs are not acknowledged and wait at the broker; retrying")
+        self._stalled = work
+        self._retry_at = now + self._storage_backoff.next()
+
+    def _resume(self) -> None:
+        log.info("storage_available", path=str(self.cfg.state.dir),
+                 paused_s=round(time.monotonic() - self._stalled_since, 3))
+        self._stalled = None
+
+    def _retry_stalled(self, now: float) -> None:
+        if self._stalled is not None and now >= self._retry_at:
+            self._commit(self._stalled)
 
     def _drain(self) -> list[Inbound]:
         try:
@@ -272,14 +456,49 @@ class Service:
 
     # -- periodic work -------------------------------------------------------------------------
 
-    def checkpoint(self) -> None:
-        """Write a checkpoint of the engine's whole state (and start a new journal)."""
-        gen = self.store.checkpoint(self.engine.state_dict())
+    def checkpoint(self) -> bool:
+        """Write a checkpoint of the engine's whole state (and start a new journal).
+
+        Only with the outbox empty: the values of the journal it ends must all be delivered
+        (its records are no longer replayed). Returns False when storage refused it (logged;
+        the journal still holds everything, and it is tried again later).
+        """
+        if self._stalled is not None or self.outbox.pending():
+            return False
+        try:
+            gen = self.store.checkpoint(self.engine.state_dict())
+        except StateError as exc:
+            fault = storage_fault(exc)
+            if fault is None:
+                raise
+            log.error("checkpoint_not_written", path=fault.filename or str(self.cfg.state.dir),
+                      error=fault.strerror)
+            self._checkpoint_at = time.monotonic()
+            return False
+        self.outbox.reset(gen)
+        self._current_records = 0
+        self._write_mark(force=True)
         self._dirty = False
         self._checkpoint_at = time.monotonic()
         self._journal_since = None
         self._journal_records = 0
         log.info("checkpoint_written", generation=gen)
+        return True
+
+    def _write_mark(self, *, force: bool = False) -> None:
+        now = time.monotonic()
+        if not force and now - self._mark_at < MARK_EVERY:
+            return
+        self._mark_at = now
+        try:
+            self.mark.write(Mark(self.outbox.generation, self.outbox.done(),
+                                 self.store.journal_size, self._current_records))
+        except OSError as exc:  # only costs values published twice after a restart
+            if not self._mark_failed:
+                log.warning("outbox_mark_not_written", path=str(self.mark.path), error=str(exc))
+            self._mark_failed = True
+        else:
+            self._mark_failed = False
 
     def publish_stats(self) -> None:
         """Retained per-daemon statistics beside the status topic."""
@@ -291,6 +510,10 @@ class Service:
         stats["reconnects"] = self.transport.reconnects
         stats["foreign"] = self.foreign
         stats["held"] = {"count": self.held.count, "first_t": dict(self.held.first_t)}
+        stats["outbox"] = self.outbox.stats()
+        stats["storage"] = {"pauses": self.storage_pauses, "paused": self._stalled is not None}
+        stats["recovery_output_differs"] = self.recovery_differs
+        stats["journal_lost"] = dict(self.journal_lost)
         payload = json.dumps(stats, separators=(",", ":"), allow_nan=False).encode()
         self.transport.publish(status_topic(self.cfg) + "/stats", payload, qos=1, retain=True)
 
@@ -350,6 +573,9 @@ class Service:
         """Give the metrics endpoint a fresh snapshot (main thread)."""
         if self.metrics is None or self.transport is None:
             return
+        delta = self._published_delta()
+        if delta:
+            self.metrics.batch({}, delta, ())
         now = time.monotonic()
         self.metrics.refresh(
             self.engine, connected=self.transport.connected.is_set(),
@@ -371,12 +597,9 @@ class Service:
         stale = self._stale_filters(ledger, wanted)
         self.transport = Transport(endpoint_of(self.cfg), [(f, qos) for f in wanted],
                                    self._enqueue, status_topic=status_topic(self.cfg),
-                                   unsubscribe=stale)
+                                   unsubscribe=stale, on_published=self.outbox.on_published)
+        self.outbox.attach(self.outbox_publisher())
         self.transport.start()
-        for c in self._backlog:  # corrected values of released held readings
-            self.transport.publish(self.t_corrected.format(c.sensor),
-                                   self.codec.encode_corrected(c), qos=qos)
-        self._backlog = []
         log.info("service_started", client_id=self.cfg.broker.client_id,
                  state_dir=str(self.cfg.state.dir), filters=len(wanted))
         now = time.monotonic()
@@ -386,13 +609,34 @@ class Service:
         wd_interval = self.notifier.watchdog_interval
         next_watchdog = now
         ready = False
+        checkpoint_due = False
         while not self._stop.is_set():
-            batch = self._drain()
-            if batch:
-                self.handle_batch(batch)
+            now = time.monotonic()
+            if self._stalled is not None:
+                self._retry_stalled(now)
+                self._stop.wait(0.05)
+            elif (self.outbox.full() or (checkpoint_due and self.outbox.pending())) \
+                    and not self.inbox.full():
+                # Back-pressure: nothing more is taken in (so nothing more acknowledged) until
+                # the broker has taken values; the backlog waits at the broker. A broker that
+                # sends past our Receive Maximum fills the inbox; then the network thread,
+                # which also reads the PUBACKs, would wait on it, so intake goes on.
+                if not checkpoint_due:
+                    self.outbox.note_wait()
+                self.outbox.wait(0.05)
+            else:
+                batch = self._drain()
+                if batch:
+                    self.handle_batch(batch)
+                else:
+                    self.outbox.pump()
+            self._write_mark()
             now = time.monotonic()
             if not ready and self.transport.subscribed.is_set():
                 ready = True
+                receive_max = self.transport.server_receive_maximum
+                if receive_max is not None:
+                    self.outbox.attach(self.outbox_publisher(), receive_max)
                 self.notifier.ready()
                 try:
                     ledger.write(wanted)
@@ -406,10 +650,12 @@ class Service:
             if self._reload.is_set():
                 self._reload.clear()
                 self.reload()
-            if now >= next_checkpoint:
+            if now >= next_checkpoint and self._dirty:
+                checkpoint_due = True
+            if checkpoint_due and self._stalled is None and not self.outbox.pending():
+                checkpoint_due = False
                 next_checkpoint = now + self.cfg.state.checkpoint_every
-                if self._dirty:
-                    self.checkpoint()
+                self.checkpoint()
             if now >= next_stats:
                 next_stats = now + self.cfg.status.interval
                 self.rejects.flush()
@@ -420,10 +666,36 @@ class Service:
                 self.notifier.watchdog()
         self._shutdown()
 
+    def outbox_publisher(self) -> Callable[[str, bytes], PublishResult]:
+        """The outbox's way to hand a value to the transport."""
+        transport = self.transport
+        assert transport is not None
+        qos = self.cfg.topics.qos
+        return lambda topic, payload: transport.publish_value(topic, payload, qos)
+
+    def _drain_outbox(self, timeout: float) -> int:
+        """Wait up to ``timeout`` s for the broker to take the outbox's values; what is left."""
+        deadline = time.monotonic() + timeout
+        while self.outbox.pending() and time.monotonic() < deadline:
+            if self.transport is None or not self.transport.connected.is_set():
+                break
+            self.outbox.wait(0.05)
+        return self.outbox.pending()
+
     def _shutdown(self) -> None:
         log.info("service_stopping")
         self.notifier.stopping()
-        self.checkpoint()
+        left = self._drain_outbox(STOP_DRAIN) if self._stalled is None else 0
+        if self._stalled is not None:
+            # The engine holds a batch that is not on disk and not acknowledged: no checkpoint
+            # (it would record events the broker will deliver again).
+            log.warning("checkpoint_skipped_storage_unavailable", path=str(self.cfg.state.dir))
+        elif left:
+            log.warning("outbox_pending_at_stop", values=left,
+                        hint="kept in the journal; published after the next start")
+            self._write_mark(force=True)
+        else:
+            self.checkpoint()
         if self.transport is not None:
             if self.transport.connected.is_set():
                 self.publish_stats()
@@ -431,5 +703,6 @@ class Service:
         if self.metrics is not None:
             self.metrics.stop()
         self.held.close()
+        self.mark.close()
         self.store.close()
         log.info("service_stopped")

@@ -28,7 +28,6 @@ from __future__ import annotations
 
 import json
 import os
-import zlib
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -40,6 +39,7 @@ from trimtab.logs import get_logger
 from trimtab.messages import Corrected, Reference
 from trimtab.privatefile import write_private
 from trimtab.records import record_to_event
+from trimtab.sensorconfig import shard_of
 
 if TYPE_CHECKING:
     from trimtab.config import Config
@@ -52,13 +52,6 @@ log = get_logger("trimtab.shards")
 
 HELD_NAME = "held.log"
 LEDGER_NAME = "subscriptions.json"
-
-
-def shard_of(sensor_id: str, count: int) -> int:
-    """The hash shard of a sensor id: CRC-32 of its UTF-8 bytes modulo ``count``."""
-    if count < 1:
-        raise ValueError(f"shard count {count} must be ≥ 1")
-    return zlib.crc32(sensor_id.encode("utf-8")) % count
 
 
 def plan_subscriptions(cfg: Config) -> list[str]:
@@ -149,6 +142,15 @@ class HeldFile:
         assert self._journal is not None
         self._journal.append(record)
         self._note(record)
+
+    def append_many(self, records: list[dict[str, Any]]) -> None:
+        """Hold several events with one write: all of them or (on a storage fault) none."""
+        if self._journal is None:
+            self.open()
+        assert self._journal is not None
+        self._journal.append_many(records)
+        for record in records:
+            self._note(record)
 
     def sync(self) -> None:
         """Make what was held durable before it is acknowledged to the broker."""

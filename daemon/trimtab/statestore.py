@@ -32,7 +32,7 @@ from __future__ import annotations
 import fcntl
 import os
 import re
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -62,7 +62,8 @@ class Recovery:
     ``state`` is ``None`` when no checkpoint exists (start the engine empty); ``generation`` is
     the checkpoint's generation (0 without one); ``records`` are every journaled event after
     that checkpoint, in order; ``torn_bytes`` is the length of the torn final line cut from
-    the newest journal; ``skipped`` has one line per bad checkpoint passed over.
+    the newest journal; ``skipped`` has one line per bad checkpoint passed over; ``current``
+    is how many of the records, the last ones, come from the journal now appended to.
     """
 
     state: dict[str, Any] | None
@@ -70,12 +71,25 @@ class Recovery:
     records: list[dict[str, Any]]
     torn_bytes: int
     skipped: list[str]
+    current: int = 0
+
+
+def _check_shapes(path: Path, records: list[dict[str, Any]], offsets: list[int],
+                  validate: Callable[[Mapping[str, Any]], object]) -> None:
+    """``validate`` each record; its ``StateError`` gets the file and the record's offset."""
+    for index, (record, offset) in enumerate(zip(records, offsets, strict=True)):
+        try:
+            validate(record)
+        except StateError as exc:
+            raise StateError(f"journal {path}: record {index + 1} at byte offset {offset}: "
+                             f"{exc}") from exc
 
 
 class StateStore:
     """Durable engine state in one directory: ``recover`` once, then append and checkpoint."""
 
-    def __init__(self, directory: Path, *, durability: Durability = "fsync", keep: int = 2) -> None:
+    def __init__(self, directory: Path, *, durability: Durability = "fsync", keep: int = 2,
+                 validate: Callable[[Mapping[str, Any]], object] | None = None) -> None:
         if durability not in ("fsync", "flush"):
             raise ValueError(f"durability must be 'fsync' or 'flush', not {durability!r}")
         self._dir = Path(directory)
@@ -83,15 +97,21 @@ class StateStore:
         self._checkpoints = CheckpointStore(self._dir, keep=keep)
         self._journal: Journal | None = None
         self._generation = 0
+        self._reopen = False
+        self._validate = validate
         self._lock_fd: int | None = None
         if not self._dir.exists():
-            self._dir.parent.mkdir(parents=True, exist_ok=True)
             try:
-                self._dir.mkdir(mode=DIR_MODE)
-            except FileExistsError:
-                pass
-            else:
-                os.chmod(self._dir, DIR_MODE)  # mkdir's mode is filtered by the umask
+                self._dir.parent.mkdir(parents=True, exist_ok=True)
+                try:
+                    self._dir.mkdir(mode=DIR_MODE)
+                except FileExistsError:
+                    pass
+                else:
+                    os.chmod(self._dir, DIR_MODE)  # mkdir's mode is filtered by the umask
+            except OSError as exc:
+                raise StateError(f"state directory {self._dir}: cannot create: {exc.strerror}") \
+                    from exc
 
     @property
     def directory(self) -> Path:
@@ -102,6 +122,11 @@ class StateStore:
     def generation(self) -> int:
         """The generation of the journal being appended to (the next checkpoint's minus one)."""
         return self._generation
+
+    @property
+    def journal_size(self) -> int:
+        """Bytes in the journal being appended to (0 when none is open)."""
+        return 0 if self._journal is None else self._journal.size
 
     def journal_path(self, generation: int) -> Path:
         """The journal file of ``generation``."""
@@ -152,17 +177,22 @@ class StateStore:
 
         records: list[dict[str, Any]] = []
         torn = 0
+        current = 0
         for generation in range(base, newest + 1):
             path = self.journal_path(generation)
             if generation not in journals:
                 if generation == newest:
+                    current = 0
                     continue  # a crash after checkpoint `newest`, before its journal existed
                 raise StateError(
                     f"journal {path} is missing but journals up to generation {newest} exist;"
                     f" replaying from {'no checkpoint' if loaded is None else f'checkpoint {base}'}"
                     " would skip its events"
                 )
-            found, tail = read_journal(path)
+            offsets: list[int] = []
+            found, tail = read_journal(path, offsets)
+            if self._validate is not None:
+                _check_shapes(path, found, offsets, self._validate)
             if tail.torn_bytes and generation != newest:
                 raise StateError(
                     f"journal {path}: torn final line at byte offset {tail.good_bytes} "
@@ -171,6 +201,7 @@ class StateStore:
                 )
             torn = tail.torn_bytes
             records.extend(found)
+            current = len(found)
 
         skipped = [] if loaded is None else list(loaded.skipped)
         if loaded is not None:
@@ -195,9 +226,15 @@ class StateStore:
             records=records,
             torn_bytes=torn,
             skipped=skipped,
+            current=current,
         )
 
     def _active(self, operation: str) -> Journal:
+        if self._journal is None and self._reopen:
+            # A checkpoint was written but its journal could not be opened (a full disk):
+            # open it now; until then nothing is appended anywhere.
+            self._journal = Journal.open(self.journal_path(self._generation), self._durability)
+            self._reopen = False
         if self._journal is None:
             raise StateError(
                 f"state store {self._dir}: {operation}() needs a successful recover() first "
@@ -226,8 +263,9 @@ class StateStore:
         # From here on the old journal must never be appended to: recovery would skip it.
         self._journal = None
         journal.close()
-        self._journal = Journal.open(self.journal_path(new), self._durability)
         self._generation = new
+        self._reopen = True
+        self._active("checkpoint")
         self._prune_journals()
         return new
 

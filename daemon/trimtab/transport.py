@@ -32,6 +32,7 @@ from paho.mqtt.subscribeoptions import SubscribeOptions
 
 from trimtab.errors import ConfigError, TransportError
 from trimtab.logs import get_logger
+from trimtab.outbox import PublishResult
 
 log = get_logger("trimtab.transport")
 
@@ -40,6 +41,8 @@ RECEIVE_MAXIMUM = 1000
 
 MessageHandler = Callable[[str, bytes, int, int], None]
 """Called on the network thread with (topic, payload, mid, qos); must return quickly."""
+PublishedHandler = Callable[[int, "str | None"], None]
+"""Called on the network thread with (mid, refusal reason or None) for each PUBACK."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -111,6 +114,7 @@ class Transport:
         status_topic: str | None = None,
         on_connected: Callable[[], None] | None = None,
         unsubscribe: Sequence[str] = (),
+        on_published: PublishedHandler | None = None,
     ) -> None:
         self.endpoint = endpoint
         self.subscriptions = list(subscriptions)
@@ -119,6 +123,9 @@ class Transport:
         self.unsubscriptions = list(unsubscribe)
         self._handler = on_message
         self._on_connected = on_connected
+        self._on_published = on_published
+        self.server_receive_maximum: int | None = None
+        """The broker's Receive Maximum from CONNACK (MQTT 5), if it sent one."""
         self.status_topic = status_topic
         self.connected = threading.Event()
         self.subscribed = threading.Event()
@@ -157,7 +164,13 @@ class Transport:
         if self.status_topic:
             client.will_set(self.status_topic, b"offline", qos=1, retain=True)
         client.max_queued_messages_set(0)
+        # No in-flight limit in paho: the service's outbox keeps at most its window of QoS 1
+        # publishes unacknowledged (see trimtab.outbox). A paho limit would make paho scan all
+        # of its messages on every PUBACK, and its default of 20 caps throughput at 20 per
+        # round trip.
+        client.max_inflight_messages_set(0)
         client.on_connect = self._on_connect
+        client.on_publish = self._on_publish
         client.on_disconnect = self._on_disconnect
         client.on_message = self._on_message
         client.on_subscribe = self._on_subscribe
@@ -193,6 +206,9 @@ class Transport:
             if isinstance(sock, socket.socket):
                 sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
             self._backoff.reset()
+            receive_max = getattr(properties, "ReceiveMaximum", None)
+            if isinstance(receive_max, int):
+                self.server_receive_maximum = receive_max
             self.connected.set()
             session = bool(getattr(flags, "session_present", False))
             log.info("mqtt_connected", host=self.endpoint.host, port=self.endpoint.port,
@@ -247,6 +263,16 @@ class Transport:
                 log.warning("mqtt_disconnected", reason=str(reason))
         except Exception:
             self.callback_errors += 1
+
+    def _on_publish(self, client: mqtt.Client, userdata: Any, mid: int, reason: ReasonCode,
+                    properties: Any) -> None:
+        try:
+            if self._on_published is not None:
+                failed = isinstance(reason, ReasonCode) and reason.is_failure
+                self._on_published(mid, str(reason) if failed else None)
+        except Exception:
+            self.callback_errors += 1
+            log.exception("mqtt_callback_failed", callback="on_publish")
 
     def _on_message(self, client: mqtt.Client, userdata: Any, msg: mqtt.MQTTMessage) -> None:
         try:
@@ -306,6 +332,22 @@ class Transport:
                 retain: bool = False) -> mqtt.MQTTMessageInfo:
         """Queue a publish (thread-safe); never waits for the broker."""
         return self._client.publish(topic, payload, qos=qos, retain=retain)
+
+    def publish_value(self, topic: str, payload: bytes, qos: int) -> PublishResult:
+        """Hand one corrected value to the client (thread-safe): its message id, or why not.
+
+        At QoS ≥ 1 paho keeps a message made while disconnected and sends it after the next
+        connect, so that counts as held; at QoS 0 it would be lost, so it is retried instead.
+        """
+        try:
+            info = self._client.publish(topic, payload, qos=qos)
+        except ValueError as exc:  # a topic or payload the protocol cannot carry
+            return PublishResult(None, str(exc), retry=False)
+        held = info.rc == MQTTErrorCode.MQTT_ERR_SUCCESS or (
+            qos > 0 and info.rc == MQTTErrorCode.MQTT_ERR_NO_CONN)
+        if held:
+            return PublishResult(info.mid)
+        return PublishResult(None, mqtt.error_string(info.rc), retry=True)
 
     def ack(self, mid: int, qos: int) -> None:
         """Acknowledge a QoS ≥ 1 message once it is journaled and processed."""

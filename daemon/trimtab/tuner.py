@@ -197,7 +197,7 @@ class Tuner:
         assert tr.state is not None
         common = Common(gate_run=lc.gate_run, warmup=lc.warmup, snapshot_every=lc.snapshot_every,
                         cap=cfg.output.cap, warm=tr.state.warm,
-                        error_window=lc.error_window,
+                        error_window=lc.error_window, shift_after=lc.shift_after,
                         band_coverage=cfg.output.band_coverage, band_gain=cfg.output.band_gain)
         n = template.n_terms
         scalers = None

@@ -77,6 +77,7 @@ class Common:
     cap: float | None
     warm: bool
     error_window: int = 200
+    shift_after: float = 0.0
     band_coverage: float = 0.9
     band_gain: float = 0.05
 
@@ -136,6 +137,7 @@ class VEngine:
         self.applied = np.zeros(k, dtype=np.int64)
         self.run_sign = np.zeros(k, dtype=np.int64)
         self.n_susp = np.zeros(k, dtype=np.int64)
+        self.run_t0 = np.full(k, np.nan)
         self.susp = np.zeros((k, max(1, common.gate_run - 1)), dtype=np.int64)
         self.recent = np.zeros(k)
         self.has_snap = np.zeros(k, dtype=bool)
@@ -149,6 +151,7 @@ class VEngine:
         self.fresh = np.ones(k, dtype=bool)
         self.long_abs = np.zeros(k)
         self.long_n = np.zeros(k, dtype=np.int64)
+        self.recoveries = np.zeros(k, dtype=np.int64)
         self.band_k = np.full(k, band_start(common.band_coverage))
         self.band_hit = np.zeros(k, dtype=np.int64)
         self.band_n = np.zeros(k, dtype=np.int64)
@@ -251,14 +254,16 @@ class VEngine:
             self.since[boom] = 0
             self.n_susp[boom] = 0
             self.run_sign[boom] = 0
+            self.run_t0[boom] = np.nan
             self.th[:, boom] = self.snap_th[:, boom]
             self.spread[boom] = self.snap_spread[boom]
             self.updates[boom] = self.snap_updates[boom]
             status[boom] = _ROLLED_BACK
         good = ok & ~boom
         # Guard.recover
-        low = good & (self.alpha < s.alpha)
+        low = good & (self.alpha < s.alpha) & (s.alpha_recovery > 0.0)
         if low.any():
+            self.recoveries += low
             back = np.minimum(s.alpha, self.alpha + s.alpha_recovery * (s.alpha - self.alpha))
             self.alpha = np.where(low, back, self.alpha)
         status[good] = _APPLIED
@@ -314,13 +319,21 @@ class VEngine:
         accept = fin & ~rej
         self.run_sign[accept] = 0
         self.n_susp[accept] = 0
+        self.run_t0[accept] = np.nan
         sign = np.where(r > 0, 1, -1)
         new_run = rej & (sign != self.run_sign)
         self.run_sign[new_run] = sign[new_run]
         self.n_susp[new_run] = 0
-        shift = rej & (self.n_susp + 1 >= self.c.gate_run)
+        self.run_t0[new_run | (rej & np.isnan(self.run_t0))] = t
+        shift = rej & (self.n_susp + 1 >= self.c.gate_run) & (
+            t - self.run_t0 >= self.c.shift_after)
         suspect = rej & ~shift
         if suspect.any():
+            # Guard.hold: the latest gate_run − 1 suspects only
+            full = suspect & (self.n_susp == self.susp.shape[1])
+            if full.any():
+                self.susp[full, :-1] = self.susp[full, 1:]
+                self.n_susp[full] -= 1
             rows = np.flatnonzero(suspect)
             self.susp[rows, self.n_susp[rows]] = i
             self.n_susp[rows] += 1
@@ -348,6 +361,7 @@ class VEngine:
             held = np.where(shift, self.n_susp, 0)
             self.run_sign[shift] = 0
             self.n_susp[shift] = 0
+            self.run_t0[shift] = np.nan
             for slot in range(int(held.max())):
                 m = held > slot
                 idx = self.susp[:, slot]
@@ -435,6 +449,8 @@ class VEngine:
             since_snapshot=int(self.since[i]),
             held=bool(self.held[i]), rollbacks=int(self.rollbacks[i]), fresh=bool(self.fresh[i]),
             long_abs=float(self.long_abs[i]), long_n=int(self.long_n[i]),
+            recoveries=int(self.recoveries[i]),
+            run_t0=None if math.isnan(self.run_t0[i]) else float(self.run_t0[i]),
         )
         last = float(self.last_applied_t[i])
         model = self.model_of(i, self.th[:, i], float(self.spread[i]), int(self.updates[i]))

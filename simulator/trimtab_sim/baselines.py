@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from trimtab_sim.realdata import DAY, FIT_DAYS, Year
+from trimtab_sim.uci import DAY, FIT_DAYS, Year
 
 __all__ = ["Baselines", "baselines"]
 

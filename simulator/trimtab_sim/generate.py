@@ -135,10 +135,13 @@ def _air(sc: Scenario, seeds: list[np.random.SeedSequence]) -> _Air:
     r_temp, r_rh = (np.random.default_rng(s) for s in seeds[1].spawn(2))
     tau = wx.wander_hours * HOUR
     cyc = np.cos(2 * np.pi * (hour - wx.temp_peak_hour) / 24.0)
-    temp = wx.temp_mean + wx.temp_daily_amplitude * cyc + wx.episode_temp * activity
+    days = (t - sc.t0) / 86400.0  # the season moves the operating range
+    temp = (wx.temp_mean + wx.temp_trend_per_day * days + wx.temp_daily_amplitude * cyc
+            + wx.episode_temp * activity)
     temp = temp + _ou(r_temp, t, wx.temp_wander, tau)
     # Humidity falls as the air warms: its daily cycle is the temperature's, inverted.
-    rh = wx.rh_mean - wx.rh_daily_amplitude * cyc + wx.episode_rh * activity
+    rh = (wx.rh_mean + wx.rh_trend_per_day * days - wx.rh_daily_amplitude * cyc
+          + wx.episode_rh * activity)
     rh = np.clip(rh + _ou(r_rh, t, wx.rh_wander, tau), wx.rh_min, wx.rh_max)
     return _Air(t=t, truth=truth, activity=activity, temp=temp, rh=rh)
 

@@ -20,7 +20,6 @@ over the year with the recommended config.
 from __future__ import annotations
 
 import csv
-import datetime as dt
 import json
 import math
 import subprocess
@@ -31,16 +30,10 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-__all__ = ["SCHEDULES", "Hour", "Year", "grid_toml", "load_year", "run_workflow"]
+from trimtab_sim.baselines import baselines
+from trimtab_sim.uci import DAY, FIT_DAYS, SCHEDULES, SENSOR, TUNE_DAYS, Year, load_year
 
-SENSOR = "co-cell"
-DAY = 86400.0
-SCHEDULES = ("hourly", "weekly", "daily")
-FIT_DAYS = 14.0
-TUNE_DAYS = 90.0
-MISSING = -200.0
-DATA = (Path(__file__).resolve().parents[2] / "tests" / "data" / "uci-air-quality"
-        / "AirQualityUCI.csv")
+__all__ = ["GRID", "Result", "grid_toml", "run_workflow", "table"]
 
 GRID = {
     "alpha": [0.05, 0.1, 0.2, 0.5],
@@ -48,65 +41,6 @@ GRID = {
     "lambda": [0.0, 1.0],
 }
 """The tuner's grid for the real year (every combination; the tuner's own bounds follow α)."""
-
-
-@dataclass(frozen=True, slots=True)
-class Hour:
-    """One hour of the cell: time, raw response, temperature, humidity and the analyser's CO."""
-
-    t: float
-    raw: float
-    temp: float
-    rh: float
-    co: float | None
-
-
-@dataclass(frozen=True, slots=True)
-class Year:
-    """The hours that have the cell's readings (in time order) and the schedule masks."""
-
-    hours: list[Hour]
-
-    @property
-    def t0(self) -> float:
-        return self.hours[0].t
-
-    def day(self, h: Hour) -> int:
-        """Days since the first reading's midnight."""
-        first = dt.datetime.fromtimestamp(self.t0, dt.UTC).replace(hour=0, minute=0, second=0)
-        return int((h.t - first.timestamp()) // DAY)
-
-    def referenced(self, schedule: str, h: Hour) -> bool:
-        """Whether the schedule gives a reference at this hour (only where the analyser has one)."""
-        if h.co is None:
-            return False
-        if schedule == "hourly":
-            return True
-        if schedule == "weekly":
-            return self.day(h) % 7 == 0
-        if schedule == "daily":
-            return dt.datetime.fromtimestamp(h.t, dt.UTC).hour == 12
-        raise ValueError(f"unknown schedule {schedule!r}")
-
-
-def load_year(path: Path = DATA) -> Year:
-    """The UCI file's hours with the cell's readings (raw, T and RH all present)."""
-    hours: list[Hour] = []
-    with open(path, newline="", encoding="utf-8") as f:
-        rows = csv.reader(f)
-        head = next(rows)
-        col = {name: i for i, name in enumerate(head)}
-        for row in rows:
-            if not row or not row[0]:
-                continue
-            when = dt.datetime.strptime(f"{row[0]} {row[1]}", "%Y/%m/%d %H:%M:%S")
-            raw, temp, rh = (float(row[col[c]]) for c in ("PT08.S1(CO)", "T", "RH"))
-            co = float(row[col["CO(GT)"]])
-            if MISSING in (raw, temp, rh):
-                continue
-            hours.append(Hour(when.replace(tzinfo=dt.UTC).timestamp(), raw, temp, rh,
-                              None if co == MISSING else co))
-    return Year(hours)
 
 
 def write_stream(year: Year, schedule: str, path: Path, until: float | None = None) -> None:
@@ -238,8 +172,6 @@ def table(year: Year | None = None,
     ``measured`` maps each schedule to (its baselines, the run with guards, without), when
     they are at hand already; otherwise they are measured here.
     """
-    from trimtab_sim.baselines import baselines
-
     year = load_year() if year is None else year
     rows: dict[str, list[str]] = {name: [] for name in (
         "fixed 14-day calibration (plain numpy)", "monthly refit on last month's references "

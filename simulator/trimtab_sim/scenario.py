@@ -65,6 +65,10 @@ class Weather(_Strict):
     wander_hours: Pos = 12.0
     episode_temp: float = 0.0
     episode_rh: float = 0.0
+    temp_trend_per_day: float = 0.0
+    """Seasonal change of the mean temperature, °C per day (spring into summer: positive)."""
+    rh_trend_per_day: float = 0.0
+    """Seasonal change of the mean relative humidity, % per day."""
     rh_min: Annotated[float, Field(ge=0.0, le=100.0)] = 5.0
     rh_max: Annotated[float, Field(ge=0.0, lt=100.0)] = 98.0
 

@@ -13,9 +13,10 @@ import argparse
 import json
 from typing import Any
 
-from trimtab.config import RELOADABLE, Config, derived_figures, file_problems, load_config
+from trimtab.config import RELOADABLE, Config, file_problems, load_config
 from trimtab.engine import configured_prior, configured_scaler, spec_of
 from trimtab.errors import ConfigError
+from trimtab.figures import derived_figures
 from trimtab.model import RidgeModel
 from trimtab.options import deprecated
 from trimtab.sensorconfig import key

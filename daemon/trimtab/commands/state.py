@@ -48,7 +48,7 @@ def run(args: argparse.Namespace) -> int:
         # show and export only read: never create the state directory to find it empty
         raise DataError(f"{state_dir}: no state directory (the daemon has not run with "
                         f"{args.config}, or state.dir points elsewhere)")
-    store = StateStore(state_dir, durability=cfg.state.durability)
+    store = StateStore(state_dir, durability=cfg.state.durability, validate=record_to_event)
     rec = store.recover()  # takes the directory's lock: refused while the daemon runs
     try:
         engine = make_engine(cfg)

@@ -24,9 +24,10 @@ from types import FrameType
 from typing import Any
 
 from trimtab.commands.replay import counted
-from trimtab.config import derived_figures, load_config
+from trimtab.config import load_config
 from trimtab.csvstream import readable_stream
 from trimtab.errors import DataError
+from trimtab.figures import derived_figures
 from trimtab.tunegrid import (
     TUNED,
     Candidate,
