@@ -207,9 +207,10 @@ class TestCrossValidate:
 
 # ISO/TS 28037:2010 straight-line examples. The x, y and u(y) below are those of NPL's
 # "Software to support ISO/TS 28037:2010(E)" (the MATLAB scripts that reproduce the
-# Technical Specification's numerical examples; read from npl.co.uk's ISOts-2024 package),
-# and match what I remembered of the document. The results checked against are the ones
-# the issue (#14) quotes from ISO/TS 28037; the data reproduce every one of them.
+# Technical Specification's numerical examples, in the ISOts-2024 package on npl.co.uk,
+# read as a stored copy of that page). The clause 6 data also match what was remembered of
+# the document; the Annex E data were not known from memory. The results checked against
+# are the ones the issue (#14) quotes from ISO/TS 28037; the data reproduce every one.
 ISO_X = (1.0, 2.0, 3.0, 4.0, 5.0, 6.0)
 # clause 6, known equal weights (the issue's "example 1", u(y) = 0.5 for all points)
 ISO_EQUAL_Y = (3.3, 5.6, 7.1, 9.3, 10.7, 12.1)
