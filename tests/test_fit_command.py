@@ -14,10 +14,13 @@ import pytest
 import scipy
 
 from trimtab.cli import main
+from trimtab.config import load_config
 from trimtab.errors import DataError
+from trimtab.messages import Reading
 from trimtab.model import RidgeModel
 from trimtab.modelfile import load_model_file, save_model_file
 from trimtab.terms import Scaler, TermSpec
+from trimtab.wiring import make_engine
 
 NORRIS = Path(scipy.__file__).parent / "stats/tests/data/nist_linregress/Norris.dat"
 # NIST StRD Norris certified values, as printed in Norris.dat (shipped in scipy's wheel).
@@ -320,3 +323,50 @@ class TestFitUncertaintyOutput:
         assert main(["fit", str(data), "--uncertainty", "u", "-o", str(tmp_path / "m")]) == 2
         assert capsys.readouterr().err == (f"trimtab fit: {data}:3: column 4 ('u'): "
                                            "uncertainty 0 must be > 0\n")
+
+
+class TestPriorIsWhatTheOperatorSays:
+    """An initial_state's prior: the file's when the config is silent, the config's otherwise."""
+
+    def _setup(self, tmp_path: Path, prior: str) -> tuple[Path, Path]:
+        data = _write_csv(tmp_path / "norris.csv", _norris_rows())
+        model = tmp_path / "m.json"
+        assert main(["fit", str(data), "--lambda", "0.1", "--prior", "zero", "-o",
+                     str(model)]) == 0
+        cfg = tmp_path / "c.toml"
+        cfg.write_text('[broker]\nclient_id = "p"\n[sensors]\nids = ["o3"]\n'
+                       f'[sensors.defaults]\ninitial_state = "{model}"\n{prior}\n'
+                       f'[state]\ndir = "{tmp_path / "state"}"\n')
+        return cfg, model
+
+    @pytest.mark.parametrize(("prior", "expected"), [
+        ("", [0.0, 0.0]),  # the file's (fit --prior zero)
+        ('prior = "zero"', [0.0, 0.0]),
+        ("prior = [9.0, 9.0]", [9.0, 9.0]),
+    ])
+    def test_the_model_pulls_toward_the_prior_the_config_gives(
+            self, tmp_path: Path, capsys: pytest.CaptureFixture[str], prior: str,
+            expected: list[float]) -> None:
+        """The engine's model takes the configured prior; check prints the effective one."""
+        cfg_path, _ = self._setup(tmp_path, prior)
+        capsys.readouterr()
+        engine = make_engine(load_config(cfg_path))
+        engine.process(Reading(T0, "o3", {"raw": 80.0}))
+        model = engine.model("o3")
+        assert model is not None and list(model.prior) == expected
+        assert main(["check", "-c", str(cfg_path)]) == 0
+        out = capsys.readouterr().out
+        shown = "configured weights" if prior.startswith("prior = [") else (
+            "zero (plain ridge)" if prior else f"the initial_state file {tmp_path / 'm.json'}")
+        assert f"prior: {shown}" in out
+
+    def test_fit_takes_prior_weights(self, tmp_path: Path,
+                                     capsys: pytest.CaptureFixture[str]) -> None:
+        """--prior W0,W1 is written into the model file; a wrong count is one clear line."""
+        data = _write_csv(tmp_path / "norris.csv", _norris_rows())
+        model = tmp_path / "m.json"
+        assert main(["fit", str(data), "--prior", "1.5,2.5", "--lambda", "1", "-o",
+                     str(model)]) == 0
+        assert list(load_model_file(model)[0].prior) == [1.5, 2.5]
+        assert main(["fit", str(data), "--prior", "1,2,3", "-o", str(model)]) == 2
+        assert "needs 2 finite weights" in capsys.readouterr().err

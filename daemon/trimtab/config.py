@@ -61,9 +61,11 @@ __all__ = [
     "StatusSettings",
     "TlsSettings",
     "TopicSettings",
+    "apply_reload",
     "file_problems",
     "load_config",
     "parse_config",
+    "reloads_live",
     "restart_required",
 ]
 
@@ -359,6 +361,9 @@ class PairingSettings(Section):
         default="end", description="what a reference's time marks"
     )
     tolerance: PosFloat = Field(default=30.0, description="s; a spot reference's nearest reading")
+    max_future: PosFloat = Field(
+        default=600.0, description="s an event may be stamped ahead of the daemon's clock"
+    )
     buffer_span: PosFloat = Field(
         default=7200.0, description="s of recent readings kept per sensor"
     )
@@ -598,6 +603,43 @@ RELOADABLE: frozenset[str] = frozenset(
 )
 """Dotted leaf paths a SIGHUP reload applies live; a change anywhere else needs a restart."""
 
+SERVING: frozenset[str] = frozenset(
+    ["sensors.ids", "sensors.pattern", "sensors.exclude", "sensors.max"]
+)
+"""Which sensors are served: live when the daemon subscribes by wildcard (the subscriptions
+stay the same); with ``topics.subscribe = "per_sensor"`` a change needs a restart."""
+
+
+def reloads_live(path: str, cfg: Config) -> bool:
+    """Whether a change at ``path`` takes effect on SIGHUP: the one table of what reloads."""
+    return path in RELOADABLE or (path in SERVING and cfg.topics.subscribe == "wildcard")
+
+
+def apply_reload(old: Config, new: Config) -> tuple[Config, tuple[str, ...], tuple[str, ...]]:
+    """The config a reload puts in force, the paths it changed live and those left for a restart.
+
+    The applied config is the old one with every live-reloadable changed leaf taken from the
+    new one, validated again; service and engine both get this one object.
+    """
+    a = _flatten(old.model_dump(by_alias=True), "")
+    b = _flatten(new.model_dump(by_alias=True), "")
+    changed = sorted(k for k in a.keys() | b.keys() if a.get(k, None) != b.get(k, None))
+    live = tuple(k for k in changed if reloads_live(k, old) and reloads_live(k, new))
+    later = tuple(k for k in changed if k not in live)
+    data = old.model_dump(by_alias=True, exclude_none=True)
+    fresh = new.model_dump(by_alias=True, exclude_none=True)
+    for path in live:
+        src, dst = fresh, data
+        *parents, leaf = path.split(".")
+        for part in parents:
+            src = src.get(part, {})
+            dst = dst.setdefault(part, {})
+        if leaf in src:
+            dst[leaf] = src[leaf]
+        else:
+            dst.pop(leaf, None)
+    return parse_config(data, "<reloaded config>"), live, later
+
 
 def _flatten(value: Any, prefix: str) -> dict[str, Any]:
     if isinstance(value, dict):
@@ -610,7 +652,4 @@ def _flatten(value: Any, prefix: str) -> dict[str, Any]:
 
 def restart_required(old: Config, new: Config) -> tuple[str, ...]:
     """The changed paths between two configs that a reload cannot apply live, sorted."""
-    a = _flatten(old.model_dump(by_alias=True), "")
-    b = _flatten(new.model_dump(by_alias=True), "")
-    changed = {k for k in a.keys() | b.keys() if a.get(k, None) != b.get(k, None)}
-    return tuple(sorted(k for k in changed if k not in RELOADABLE))
+    return apply_reload(old, new)[2]

@@ -235,6 +235,14 @@ class Engine:
             st.guard.alpha = min(max(cfg.learning.alpha, cfg.learning.alpha_min),
                                  cfg.learning.alpha_max)
 
+    def rewind(self, cfg: Config, state: Mapping[str, Any]) -> None:
+        """Go back to a config and a :meth:`state_dict` taken under it (an undone reload)."""
+        self._cfg = cfg
+        self._gs = self._guard_settings(cfg)
+        self._served = set()
+        self._specs = {}
+        self.load_state(state)
+
     def _with_learning(self, model: RidgeModel) -> RidgeModel:
         lc = self._cfg.learning
         return model.with_settings(

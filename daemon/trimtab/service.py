@@ -16,12 +16,13 @@ import signal
 import threading
 import time
 from collections import Counter
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from types import FrameType
 from typing import TYPE_CHECKING, Any
 
+from trimtab.config import apply_reload
 from trimtab.engine import Engine
 from trimtab.errors import ConfigError, DecodeError, StateError
 from trimtab.logs import configure_logging, get_logger
@@ -117,6 +118,17 @@ class RejectLog:
             self._since.clear()
 
 
+ENGINE_KEPT = frozenset({"reading_accepted", "reference_applied", "reference_level_shift",
+                         "reference_pending", "scaler_moved"})
+"""Engine counters that are not a refusal, a drop or a guard's intervention."""
+
+
+def engine_refusals(before: Mapping[str, int], after: Mapping[str, int]) -> dict[str, int]:
+    """The engine's refusal and guard counters that grew between two readings of its counts."""
+    return {k: v - before.get(k, 0) for k, v in sorted(after.items())
+            if k not in ENGINE_KEPT and v > before.get(k, 0)}
+
+
 def endpoint_of(cfg: Config) -> Endpoint:
     """The transport endpoint the ``[broker]`` section describes."""
     b = cfg.broker
@@ -173,6 +185,7 @@ class Service:
         self._storage_backoff = Backoff(first=0.5, cap=30.0)
         self.storage_pauses = 0
         self.recovery_differs = 0
+        self._engine_logged: dict[str, int] = {}
         self._stop = threading.Event()
         self._reload = threading.Event()
         self._dirty = False
@@ -304,7 +317,7 @@ class Service:
             if not (serve or hold):
                 raise DecodeError("foreign" if sensors.elsewhere(sensor) else "unknown_sensor",
                                   sensor)
-            return self.codec.decode_reading(sensor, msg.payload), serve, hold
+            return self._timely(self.codec.decode_reading(sensor, msg.payload)), serve, hold
         source = self.t_references.match(msg.topic)
         if source is not None:
             serve = bool(self.cfg.reference_targets(source))
@@ -312,8 +325,21 @@ class Service:
             if not (serve or hold):
                 raise DecodeError("foreign" if sensors.elsewhere(source) else "unknown_sensor",
                                   source)
-            return self.codec.decode_reference(source, msg.payload), serve, hold
+            return self._timely(self.codec.decode_reference(source, msg.payload)), serve, hold
         raise DecodeError("unknown_topic", msg.topic)
+
+    def _timely(self, event: Reading | Reference) -> Reading | Reference:
+        """Refuse an event stamped further ahead of the daemon's clock than pairing.max_future.
+
+        One reading stamped in the year 9999 would otherwise become the sensor's clock and
+        leave every later reference unmatched, or every later reference out of order. Past
+        times are left to the engine (late and replayed data are normal); refused events are
+        never journaled, so recovery and the running daemon agree.
+        """
+        ahead = event.t - time.time()
+        if ahead > self.cfg.pairing.max_future:
+            raise DecodeError("future_time", f"t = {event.t} is {ahead:.0f} s ahead of the clock")
+        return event
 
     def handle_batch(self, batch: list[Inbound]) -> None:
         """Decode and process a batch, journal it with its outputs, then acknowledge it.
@@ -517,27 +543,50 @@ class Service:
         payload = json.dumps(stats, separators=(",", ":"), allow_nan=False).encode()
         self.transport.publish(status_topic(self.cfg) + "/stats", payload, qos=1, retain=True)
 
-    def reload(self) -> None:
-        """Re-validate the config file; apply what may change live; keep the old on error."""
+    def reload(self) -> bool:
+        """Re-validate the config file and apply what reloads live (see ``apply_reload``).
+
+        The engine is reconfigured and checkpointed at once, so the journal after the reload
+        holds only what the new settings processed, and a crash after it recovers exactly what
+        the running daemon held. When that checkpoint cannot be written the engine is put back
+        as it was, under the old config, and False is returned (the reload is tried again);
+        True when the reload was applied, refused or changed nothing.
+        """
         if self.config_path is None or self._loader is None:
-            return
+            return True
         try:
-            new = self._loader(self.config_path)
+            applied, live, later = apply_reload(self.cfg, self._loader(self.config_path))
         except ConfigError as exc:
             log.error("config_reload_failed", errors=exc.errors)
-            return
-        restart = [name for name in ("broker", "topics", "payload", "sensors", "pairing", "state",
-                                     "metrics")
-                   if getattr(new, name) != getattr(self.cfg, name)]
-        if restart:
-            log.warning("config_reload_needs_restart", sections=restart)
+            return True
+        if later:
+            log.warning("config_reload_needs_restart", paths=list(later))
+        if not live:
+            log.info("config_reload_nothing_live", path=str(self.config_path))
+            return True
         self.notifier.reloading()
-        self.engine.reconfigure(new)
-        self.cfg = self.cfg.model_copy(update={"learning": new.learning, "output": new.output,
-                                               "logging": new.logging, "status": new.status})
+        old = self.cfg
+        saved = self.engine.state_dict()
+        self.engine.reconfigure(applied)
+        if not self.checkpoint():
+            self.engine.rewind(old, saved)
+            log.warning("config_reload_deferred", reason="checkpoint_not_written")
+            self.notifier.ready()
+            return False
+        self.cfg = applied
+        added = sorted(set(applied.sensors.ids) - set(old.sensors.ids))
+        removed = [s for s in self.engine.sensors()
+                   if old.sensor_allowed(s) and not applied.sensor_allowed(s)]
+        if added:
+            log.info("sensors_added", sensors=added)
+        if removed:
+            stats = self.engine.stats()["sensors"]
+            log.warning("sensors_removed", sensors=removed, state_kept=True,
+                        updates={s: stats[s]["updates"] for s in removed})
         configure_logging(self.cfg.logging.level, self.cfg.logging.format)
-        log.info("config_reloaded", path=str(self.config_path))
+        log.info("config_reloaded", path=str(self.config_path), applied=list(live))
         self.notifier.ready()
+        return True
 
     # -- lifecycle -----------------------------------------------------------------------------
 
@@ -610,18 +659,21 @@ class Service:
         next_watchdog = now
         ready = False
         checkpoint_due = False
+        reload_due = False
+        reload_retry = 0.0
         while not self._stop.is_set():
             now = time.monotonic()
             if self._stalled is not None:
                 self._retry_stalled(now)
                 self._stop.wait(0.05)
-            elif (self.outbox.full() or (checkpoint_due and self.outbox.pending())) \
+            elif (self.outbox.full() or ((checkpoint_due or reload_due)
+                                         and self.outbox.pending())) \
                     and not self.inbox.full():
                 # Back-pressure: nothing more is taken in (so nothing more acknowledged) until
                 # the broker has taken values; the backlog waits at the broker. A broker that
                 # sends past our Receive Maximum fills the inbox; then the network thread,
                 # which also reads the PUBACKs, would wait on it, so intake goes on.
-                if not checkpoint_due:
+                if not (checkpoint_due or reload_due):
                     self.outbox.note_wait()
                 self.outbox.wait(0.05)
             else:
@@ -649,7 +701,12 @@ class Service:
                 self.refresh_metrics()
             if self._reload.is_set():
                 self._reload.clear()
-                self.reload()
+                reload_due = True
+            if reload_due and now >= reload_retry and self._stalled is None \
+                    and not self.outbox.pending():
+                # applied with the outbox empty, so the checkpoint before it can be written
+                reload_due = not self.reload()
+                reload_retry = now + 5.0
             if now >= next_checkpoint and self._dirty:
                 checkpoint_due = True
             if checkpoint_due and self._stalled is None and not self.outbox.pending():
@@ -659,6 +716,12 @@ class Service:
             if now >= next_stats:
                 next_stats = now + self.cfg.status.interval
                 self.rejects.flush()
+                grown = engine_refusals(self._engine_logged, self.engine.counts)
+                if grown:
+                    # the engine is pure; its refusals and guard actions are logged here, once
+                    # per status interval, with what grew since the last line
+                    log.warning("engine_refusals", counts=grown)
+                    self._engine_logged = dict(self.engine.counts)
                 if self.transport.connected.is_set():
                     self.publish_stats()
             if wd_interval is not None and now >= next_watchdog and self.transport.alive():
