@@ -20,6 +20,7 @@ from trimtab.config import Config, parse_config
 from trimtab.engine import Engine
 from trimtab.errors import DecodeError
 from trimtab.messages import Corrected, Reading, Reference
+from trimtab_sim.soak import record
 
 GATE_RUN = 3
 T0 = 1_767_225_600.0
@@ -227,6 +228,9 @@ class TestFlood:
         raw = 0.8 * truth(601) + 5.0
         out = engine.process(Reading(t + 60.0, "s1", {"raw": raw}))[0]
         assert abs(out.value - truth(601)) < 2.0  # not hijacked: still near the truth
+        record("flood: references gated", statuses["gated"])
+        record("flood: references rate-limited", statuses["rate_limited"])
+        record("flood: error of the next corrected value", round(abs(out.value - truth(601)), 3))
 
     def test_new_ids_past_sensors_max_get_no_state(self) -> None:
         """With a pattern, ids past sensors.max are refused and counted; memory stays bounded."""
@@ -242,3 +246,4 @@ class TestFlood:
         assert engine.counts["reading_sensor_limit"] == 150
         assert engine.counts["reference_sensor_limit"] == 150
         assert engine.process(Reading(T0 + 500.0, "s7", {"raw": 41.0}))  # known ids still served
+        record("sensors.max 50: new ids refused", engine.counts["reading_sensor_limit"])

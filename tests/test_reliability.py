@@ -108,6 +108,8 @@ class TestCrash:
             watcher.close()
         engine, recovered = assert_matches_replay(cfg, events)
         assert recovered.counts["reference_applied"] == engine.counts["reference_applied"] > 0
+        # the scaler followed the sensors' range all along: the kills fell across its moves
+        assert engine.counts["scaler_moved"] > kills
         recoveries = [x for x in _log_events(daemon, "state_recovered")
                       if x.get("logger") == "trimtab.service"]
         assert recoveries  # the last start at least recovered; earlier kills may beat it

@@ -535,8 +535,8 @@ class Engine:
         if before is not None:
             st.guard.take_snapshot(before)
         try:
-            r = model.step_phi(phi, y, lifted(st.guard.alpha, self._cfg.learning.alpha_max,
-                                              lift))
+            r = model.step_phi(phi, y, float(lifted(st.guard.alpha,
+                                                    self._cfg.learning.alpha_max, lift)))
         except ModelError:
             return "non_finite"  # step_phi leaves the state untouched when it refuses
         st.guard.record(r, self._gs)

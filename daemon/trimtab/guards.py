@@ -54,8 +54,12 @@ def gap_fraction(gap: T, span: T | float) -> T:
 
 
 def lifted(alpha: T, alpha_max: T | float, fraction: T | float) -> T:
-    """α raised the given fraction of the way to α_max: always inside [α, α_max]."""
-    return alpha + (alpha_max - alpha) * fraction
+    """α raised the given fraction of the way to α_max: always inside [α, α_max].
+
+    The ``minimum`` keeps a rounding of α + (α_max − α)·1 from landing one ulp above α_max.
+    """
+    out: T = np.minimum(alpha_max, alpha + (alpha_max - alpha) * fraction)
+    return out
 SQRT_HALF_PI = math.sqrt(math.pi / 2.0)
 
 

@@ -554,24 +554,28 @@ class Service:
         """
         if self.config_path is None or self._loader is None:
             return True
+        self.notifier.reloading()
         try:
-            applied, live, later = apply_reload(self.cfg, self._loader(self.config_path))
+            return self._reload_from(self._loader(self.config_path))
         except ConfigError as exc:
             log.error("config_reload_failed", errors=exc.errors)
             return True
+        finally:
+            self.notifier.ready()
+
+    def _reload_from(self, new: Config) -> bool:
+        applied, live, later = apply_reload(self.cfg, new)
         if later:
             log.warning("config_reload_needs_restart", paths=list(later))
         if not live:
             log.info("config_reload_nothing_live", path=str(self.config_path))
             return True
-        self.notifier.reloading()
         old = self.cfg
         saved = self.engine.state_dict()
         self.engine.reconfigure(applied)
         if not self.checkpoint():
             self.engine.rewind(old, saved)
             log.warning("config_reload_deferred", reason="checkpoint_not_written")
-            self.notifier.ready()
             return False
         self.cfg = applied
         added = sorted(set(applied.sensors.ids) - set(old.sensors.ids))
@@ -585,7 +589,6 @@ class Service:
                         updates={s: stats[s]["updates"] for s in removed})
         configure_logging(self.cfg.logging.level, self.cfg.logging.format)
         log.info("config_reloaded", path=str(self.config_path), applied=list(live))
-        self.notifier.ready()
         return True
 
     # -- lifecycle -----------------------------------------------------------------------------
