@@ -51,7 +51,7 @@ class TestBenchQuick:
             pytest.skip("mosquitto binary not found on PATH")
         out = tmp_path / "bench.json"
         proc = subprocess.run(
-            [str(BIN / "trimtab-sim"), "bench", "--quick", "--json", str(out),
+            [str(BIN / "trimtab-sim"), "bench", "--quick", "-o", str(out),
              "--workdir", str(tmp_path / "work")],
             capture_output=True, text=True, timeout=600, check=False)
         assert proc.returncode == 0, proc.stderr[-3000:]

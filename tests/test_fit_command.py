@@ -46,7 +46,9 @@ def _write_csv(path: Path, rows: list[tuple[float, float]], iso: bool = False) -
 
 
 def _coefficients(out: str) -> dict[str, float]:
-    found = re.findall(r"^\s+(offset|gain \(raw\)|\S+)\s+(-?\d\S*)$", out, re.MULTILINE)
+    table = out.split("covariance of the coefficients")[0]
+    found = re.findall(r"^  (offset|gain \(raw\)|\S+)\s+(-?\d\S*)(?:\s+\S+)?$", table,
+                       re.MULTILINE)
     return {k: float(v) for k, v in found}
 
 
@@ -58,13 +60,14 @@ class TestFitCommand:
         writes a model file that reads back to the same coefficients."""
         data = _write_csv(tmp_path / "norris.csv", _norris_rows())
         out = tmp_path / "m.json"
-        rc = main(["fit", str(data), "--lambda", "0", "--sensor", "o3-01", "-o", str(out)])
+        rc = main(["fit", str(data), "--lambda", "0", "--sensor", "o3-01", "-o", str(out),
+                   "--precision", "12"])
         text = capsys.readouterr().out
         assert rc == 0
         coef = _coefficients(text)
-        assert coef["offset"] == pytest.approx(NORRIS_B0, rel=1e-8)
-        assert coef["gain (raw)"] == pytest.approx(NORRIS_B1, rel=1e-8)
-        assert re.search(r"residual SD\s+0\.884796\s", text)
+        assert coef["offset"] == pytest.approx(NORRIS_B0, rel=1e-10)
+        assert coef["gain (raw)"] == pytest.approx(NORRIS_B1, rel=1e-10)
+        assert re.search(r"residual SD\s+0\.884796396144\s", text)
         assert "n             36" in text
         model, doc = load_model_file(out)
         assert doc["sensor"] == "o3-01"
@@ -76,7 +79,8 @@ class TestFitCommand:
         data = _write_csv(tmp_path / "norris.csv", _norris_rows(), iso=True)
         script = Path(sys.executable).parent / "trimtab"
         proc = subprocess.run(
-            [str(script), "fit", str(data), "--lambda", "0", "-o", str(tmp_path / "m.json")],
+            [str(script), "fit", str(data), "--lambda", "0", "-o", str(tmp_path / "m.json"),
+             "--precision", "9"],
             capture_output=True, text=True, timeout=120, check=False,
         )
         assert proc.returncode == 0, proc.stderr
@@ -234,6 +238,93 @@ class TestModelFile:
             load_model_file(path)
 
 
+class TestFitUncertaintyOutput:
+    def _iso_csv(self, path: Path, bom: bool = False) -> Path:
+        """ISO/TS 28037:2010 clause 6 unequal-weights data (x, y, u(y) as in NPL's software
+        for it), as a CSV with an uncertainty column."""
+        rows = zip((1, 2, 3, 4, 5, 6), (3.2, 4.3, 7.6, 8.6, 11.7, 12.8),
+                   (0.5, 0.5, 0.5, 1.0, 1.0, 1.0), strict=True)
+        text = "t,raw,ref,u\n" + "".join(f"{x},{x},{y},{u}\n" for x, y, u in rows)
+        path.write_bytes(("\ufeff" if bom else "").encode() + text.encode())
+        return path
+
+    def test_weighted_fit_prints_uncertainties_and_chi2(
+        self, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+    ) -> None:
+        """--uncertainty: the ISO/TS 28037 clause 6 results (a = 0.885, u(a) = 0.530,
+        b = 2.057, u(b) = 0.178, χ² = 4.131, as the issue quotes them) at --precision 4."""
+        data = self._iso_csv(tmp_path / "iso.csv")
+        assert main(["fit", str(data), "--uncertainty", "u", "--precision", "4",
+                     "-o", str(tmp_path / "m.json")]) == 0
+        text = capsys.readouterr().out
+        assert re.search(r"^  offset\s+0\.8852\s+0\.5297$", text, re.MULTILINE)
+        assert re.search(r"^  gain \(raw\)\s+2\.057\s+0\.1779$", text, re.MULTILINE)
+        assert "χ²            4.131  on 4 degrees of freedom" in text
+        assert "covariance of the coefficients" in text
+        assert "λ             0  " in text
+
+    def test_json_has_every_digit_and_the_covariance(
+        self, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+    ) -> None:
+        """--json prints the report with full-precision floats, the same as the model file's."""
+        data = self._iso_csv(tmp_path / "iso.csv")
+        out = tmp_path / "m.json"
+        assert main(["fit", str(data), "--uncertainty", "u", "--json", "-o", str(out)]) == 0
+        doc = json.loads(capsys.readouterr().out)
+        saved = json.loads(out.read_text())["fit"]
+        assert doc["coefficients"] == saved["coefficients"]
+        assert doc["covariance"] == saved["covariance"]
+        assert doc["chi2"] == pytest.approx(4.130801687763715, rel=1e-12)
+        assert doc["uncertainties"]["raw"] == pytest.approx(0.177892016741205, rel=1e-12)
+        assert doc["dof"] == 4 and doc["weighted"] is True
+
+    def test_csv_with_a_byte_order_mark(self, tmp_path: Path,
+                                        capsys: pytest.CaptureFixture[str]) -> None:
+        """A CSV saved by a spreadsheet with a UTF-8 BOM fits exactly as one without it."""
+        plain = self._iso_csv(tmp_path / "plain.csv")
+        bom = self._iso_csv(tmp_path / "bom.csv", bom=True)
+        assert bom.read_bytes().startswith(b"\xef\xbb\xbf")
+        docs = []
+        for data in (plain, bom):
+            assert main(["fit", str(data), "--lambda", "0", "--json",
+                         "-o", str(tmp_path / "m.json")]) == 0
+            docs.append(json.loads(capsys.readouterr().out)["coefficients"])
+        assert docs[0] == docs[1]
+
+    def test_penalised_fit_says_uncertainties_are_not_given(
+        self, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+    ) -> None:
+        """With λ > 0 the report prints no uncertainty column and says why."""
+        data = self._iso_csv(tmp_path / "iso.csv")
+        assert main(["fit", str(data), "--lambda", "0.5", "-o", str(tmp_path / "m.json")]) == 0
+        text = capsys.readouterr().out
+        assert "std. uncertainty" not in text and "covariance" not in text
+        assert "uncertainties not given for λ > 0" in text
+
+    @pytest.mark.parametrize(("extra", "message"), [
+        (["--lambda", "auto"], "--uncertainty fits by weighted least squares, which needs "
+                               "--lambda 0 (not auto)"),
+        (["--lambda", "0.3"], "needs --lambda 0, not 0.3"),
+        (["--precision", "0"], "--precision 0: give 1 to 17 significant digits"),
+    ])
+    def test_refusals(self, tmp_path: Path, capsys: pytest.CaptureFixture[str],
+                      extra: list[str], message: str) -> None:
+        """A weighted ridge or a precision out of range is refused with one line, exit 2."""
+        data = self._iso_csv(tmp_path / "iso.csv")
+        assert main(["fit", str(data), "--uncertainty", "u", *extra,
+                     "-o", str(tmp_path / "m.json")]) == 2
+        assert message in capsys.readouterr().err
+
+    def test_zero_uncertainty_names_row_and_column(self, tmp_path: Path,
+                                                   capsys: pytest.CaptureFixture[str]) -> None:
+        """A reference uncertainty of 0 is refused naming file, line and column."""
+        data = tmp_path / "z.csv"
+        data.write_text("t,raw,ref,u\n1,1,2,0.5\n2,2,4,0\n3,3,6,0.5\n")
+        assert main(["fit", str(data), "--uncertainty", "u", "-o", str(tmp_path / "m")]) == 2
+        assert capsys.readouterr().err == (f"trimtab fit: {data}:3: column 4 ('u'): "
+                                           "uncertainty 0 must be > 0\n")
+
+
 class TestPriorIsWhatTheOperatorSays:
     """An initial_state's prior: the file's when the config is silent, the config's otherwise."""
 
@@ -266,7 +357,7 @@ class TestPriorIsWhatTheOperatorSays:
                     'prior = "factory"': [fitted.scaler.centre[0], fitted.scaler.scale[0]]}
         assert list(model.prior) == expected[prior]
         assert list(model.theta) == list(fitted.theta)  # the prior never moves the weights
-        assert main(["check", str(cfg_path)]) == 0
+        assert main(["check", "-c", str(cfg_path)]) == 0
         out = capsys.readouterr().out
         shown = {"": "initial: the fitted weights", 'prior = "initial"': "initial: the fitted",
                  'prior = "zero"': "zero (plain ridge)", "prior = [9.0, 9.0]":

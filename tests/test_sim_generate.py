@@ -292,10 +292,24 @@ class TestScenario:
             )
         errors = info.value.errors
         assert (
-            "sensors.0.faults.noise: Input should be greater than or equal to 0 "
-            "[greater_than_equal]" in errors
+            "scenario: sensors[0].faults.noise: Input should be greater than or equal to 0 "
+            "(got -1)" in errors
         )
-        assert "sensors.0.colour: Extra inputs are not permitted [extra_forbidden]" in errors
+        assert any(e.startswith("scenario: sensors[0].colour: unknown key; allowed: id, ")
+                   for e in errors)
+
+    def test_unknown_key_names_file_and_suggests(self, tmp_path: Path) -> None:
+        """A misspelt key is named with its file and path and the closest allowed key."""
+        p = tmp_path / "quay.toml"
+        p.write_text('name = "x"\n[signal]\ndaily_amplitud = 3\n[[sensors]]\nid = "a"\n')
+        with pytest.raises(ConfigError) as info:
+            load_scenario(p)
+        assert info.value.errors == [
+            f"{p}: signal.daily_amplitud: unknown key; did you mean 'daily_amplitude'? allowed: "
+            "unit, base, daily_amplitude, daily_peak_hour, weekly, wander, wander_hours, floor, "
+            "episodes"
+        ]
+        assert "[extra_forbidden]" not in str(info.value.errors)
 
     def test_cross_field_errors(self) -> None:
         """Cross-field rules report each problem under its own field path."""
@@ -309,7 +323,7 @@ class TestScenario:
                 }
             )
         assert info.value.errors == [
-            "sensors.0.interval: must be a whole multiple of step (60.0 s) [cross_field]",
-            "sensors.1.id: duplicate sensor id 'a' [cross_field]",
-            "references.0.serves: unknown sensor 'b' [cross_field]",
+            "scenario: sensors[0].interval: must be a whole multiple of step (60.0 s)",
+            "scenario: sensors[1].id: duplicate sensor id 'a'",
+            "scenario: references[0].serves: unknown sensor 'b'",
         ]

@@ -229,3 +229,37 @@ class TestReport:
         files = report.write_report(res, js, [], tmp_path, {})
         assert [p.name for p in files] == ["report.md"]
         assert "matplotlib is not installed" in files[0].read_text()
+
+    def test_figures_carry_units_and_dates(self) -> None:
+        """Value axes name the scenario's unit; time axes are dates (UTC), not day counts;
+        the series plot draws truth and corrected in front of raw, with the band shaded."""
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.dates as mdates
+        import matplotlib.pyplot as plt
+
+        js, _ = self._result()
+        j = js[0]
+        series = report.series_figure(j, "µg/m³")
+        ax = series.axes[0]
+        assert ax.get_ylabel() == "value (µg/m³)" and ax.get_xlabel() == "time (UTC)"
+        assert isinstance(ax.xaxis.get_major_formatter(), mdates.ConciseDateFormatter)
+        start = mdates.num2date(ax.get_lines()[0].get_xdata(orig=False)[0])
+        assert start.timestamp() == pytest.approx(T0)
+        order = {line.get_label(): line.get_zorder() for line in ax.get_lines()}
+        assert order["truth"] > order["raw"] and order["corrected"] > order["raw"]
+        assert "oracle" not in order
+        assert any(c.get_label() == "± band" for c in ax.collections)
+        scatter = report.scatter_figure(j, "ppb").axes[0]
+        assert (scatter.get_xlabel(), scatter.get_ylabel()) == ("truth (ppb)", "value (ppb)")
+        error = report.error_figure(j, "ppb").axes[0]
+        assert error.get_ylabel() == "error (ppb)"
+        plt.close("all")
+
+    def test_markdown_states_both_r2_definitions(self) -> None:
+        """The report says which R² each table uses, so −1.45 and 0.958 are not a riddle."""
+        _, res = self._result()
+        md = report.markdown(res, [], {}, {}, None)
+        assert "1 − Σ(value − truth)² / Σ(truth − mean truth)²" in md
+        assert "the squared correlation" in md

@@ -379,7 +379,7 @@ class TestRefused:
                                                include_current=False)]
         assert not cand.valid
         path = _write_config(candidate_document(perturbed.base, settings), tmp_path / "bad.toml")
-        proc = _trimtab("check", "--no-files", str(path), cwd=tmp_path)
+        proc = _trimtab("check", "--no-files", "-c", str(path), cwd=tmp_path)
         assert proc.returncode == 2
         expected = [line.split(f"{path}: ", 1)[1] for line in proc.stderr.splitlines()]
         assert [why.split("candidate 0: ", 1)[1] for why in cand.refused] == expected
@@ -590,7 +590,7 @@ class TestTuneCommand:
         merged = candidate_document(perturbed.base, {k: chosen.get(k) for k in TUNED})
         path = _write_config(merged, tmp_path / "with-snippet.toml")
         for p in (path, tmp_path / "best.toml"):
-            check = _trimtab("check", "--no-files", str(p), cwd=tmp_path)
+            check = _trimtab("check", "--no-files", "-c", str(p), cwd=tmp_path)
             assert check.returncode == 0, check.stderr
         loaded = load_config(tmp_path / "best.toml").learning
         assert (loaded.alpha, loaded.lam) == (chosen["alpha"], chosen["lambda"])
@@ -635,11 +635,11 @@ class TestTuneCommand:
     def test_nothing_to_score_exits_one(self, tmp_path: Path) -> None:
         """A stream with nothing to score gives the table, no recommendation and status 1."""
         path = _write_config(_config_dict(tmp_path / "state"), tmp_path / "c.toml")
-        stream = tmp_path / "empty.jsonl"
-        stream.write_text("")
+        stream = tmp_path / "untrue.jsonl"  # readings without truth, and no reference
+        stream.write_text('{"t": 1767225600.0, "sensor": "s1", "reading": {"raw": 4.0}}\n')
         proc = _trimtab("tune", "-c", str(path), str(stream), "--search", "2", "--quiet",
                         cwd=tmp_path)
-        assert proc.returncode == 1
+        assert proc.returncode == 1, proc.stderr
         assert "no candidate could be scored" in proc.stdout and "[learning]" not in proc.stdout
 
     def test_ctrl_c_reports_results_so_far(self, perturbed: Run, tmp_path: Path) -> None:

@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import importlib.util
+import os
 import sys
 from collections.abc import Sequence
 
@@ -28,6 +29,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "replay": ("replay", "run the engine over a stream file, offline"),
     "state": ("state", "show, export or import a sensor's model state"),
     "tune": ("tune", "evaluate candidate learning settings on a recorded stream"),
+    "convert": ("convert", "turn an operator's CSV file into a stream file"),
 }
 
 
@@ -78,6 +80,22 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"trimtab {args.command}: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # the reader of our output went away (`| head`): stop quietly, as shell tools do
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 141
+    except OSError as exc:
+        # a file the command named could not be opened or written: one line, the file named
+        where = exc.filename if exc.filename is not None else "a file"
+        print(f"trimtab {args.command}: {where}: {exc.strerror or exc}", file=sys.stderr)
+        return 2
+    except Exception as exc:  # the last line of defence: no traceback reaches a user
+        if os.environ.get("TRIMTAB_TRACEBACK"):
+            raise
+        print(f"trimtab {args.command}: internal error: {type(exc).__name__}: {exc} "
+              "(a bug; TRIMTAB_TRACEBACK=1 shows where)", file=sys.stderr)
+        return 1
     return code
 
 

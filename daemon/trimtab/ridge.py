@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -73,6 +73,13 @@ def solve(
     return theta
 
 
+UNCERTAINTY_NOT_GIVEN = (
+    "not given for λ > 0 (the penalty biases the coefficients toward the prior by an amount "
+    "the data cannot measure); fit with --lambda 0 for them"
+)
+"""What the fit report says instead of uncertainties when λ > 0."""
+
+
 @dataclass(frozen=True, slots=True)
 class FitReport:
     """What a closed-form fit found, in engineering units.
@@ -81,6 +88,16 @@ class FitReport:
     ``residual_sd`` = √(SSR/(n − p)) as NIST's StRD certifies it (None when n ≤ p);
     ``r2`` = 1 − SSR/SST about the mean (None when y is constant); ``rmse`` = √(SSR/n);
     ``condition``: 2-norm condition number of the standardised design [1, z…].
+
+    Uncertainties (λ = 0 only; None otherwise, with ``uncertainty_basis`` saying why):
+    ``covariance`` is the covariance matrix of the coefficients in engineering units, rows
+    and columns in ``coefficients`` order, and ``uncertainties`` the square roots of its
+    diagonal. Without stated reference uncertainties it is s²·(XᵀX)⁻¹ with s the residual SD
+    (ordinary least squares; ISO/TS 28037:2010 Annex E, uncertainties known up to a scale
+    factor). With them (weighted least squares, weights 1/u(y)²) it is (XᵀWX)⁻¹, not
+    rescaled by the residuals (ISO/TS 28037:2010 clause 6), and ``chi2`` = Σ (r_i/u(y_i))²
+    on ``dof`` = n − p degrees of freedom tells whether the stated u(y) are consistent with
+    the scatter (χ² near dof; well above it, they are too small or the model is wrong).
     """
 
     n: int
@@ -93,10 +110,26 @@ class FitReport:
     n_weights: int
     penalise_intercept: bool = False
     prior: str = "factory"
+    uncertainties: dict[str, float] | None = None
+    covariance: tuple[tuple[float, ...], ...] | None = None
+    uncertainty_basis: str = ""
+    weighted: bool = False
+    chi2: float | None = None
+
+    @property
+    def dof(self) -> int:
+        """Degrees of freedom of the residuals: n − p."""
+        return self.n - self.n_weights
 
     def to_dict(self) -> dict[str, Any]:
         """A plain JSON-able form (an infinite condition number becomes None)."""
         return {
+            "uncertainties": None if self.uncertainties is None else dict(self.uncertainties),
+            "covariance": None if self.covariance is None else [list(r) for r in self.covariance],
+            "uncertainty_basis": self.uncertainty_basis,
+            "weighted": self.weighted,
+            "chi2": self.chi2,
+            "dof": self.dof,
             "n": self.n,
             "lambda": self.lam,
             "coefficients": dict(self.coefficients),
@@ -152,9 +185,14 @@ def fit_model(
     prior: Sequence[float] | None = None,
     penalise_intercept: bool = False,
     scaler: Scaler | None = None,
+    u_ref: ArrayLike | None = None,
     **model_settings: Any,
 ) -> tuple[RidgeModel, FitReport]:
     """Fit a model in closed form to n references and report it.
+
+    ``u_ref``: the references' standard uncertainties, for a weighted least-squares fit
+    (weights 1/u²; λ must be 0). The report carries the coefficients' covariance when λ = 0
+    (see :class:`FitReport`).
 
     X: n × len(spec.inputs) inputs (columns in ``spec.inputs`` order); t: event times (epoch
     seconds); y: references. The scaler comes from the data unless given; ``origin`` defaults
@@ -176,7 +214,14 @@ def fit_model(
         raise ModelError(f"scaler has {len(scaler)} terms; the spec has {spec.n_terms}")
     Phi = np.column_stack([np.ones(n), scaler.transform(T)])
     p = factory_prior(spec, scaler) if prior is None else [float(v) for v in prior]
-    theta = solve(Phi, ya, lam, p, penalise_intercept)
+    sw = None if u_ref is None else 1.0 / _uncertainties(u_ref, n)
+    if sw is not None and lam != 0.0:
+        raise ModelError(f"a weighted fit (stated reference uncertainties) needs λ = 0, not "
+                         f"λ = {lam:g}: a weighted ridge is not offered")
+    if sw is None:
+        theta = solve(Phi, ya, lam, p, penalise_intercept)
+    else:
+        theta = solve(Phi * sw[:, None], ya * sw, lam, p, penalise_intercept)
     resid = Phi @ theta - ya
     ssr = float(resid @ resid)
     k1 = Phi.shape[1]
@@ -184,6 +229,19 @@ def fit_model(
     spread = 0.0
     if n > k1:
         spread = float(np.mean(np.abs(resid))) * _SQRT_HALF_PI * math.sqrt(n / (n - k1))
+    unc: dict[str, float] | None = None
+    cov_rows: tuple[tuple[float, ...], ...] | None = None
+    chi2 = None if sw is None else float(np.sum((resid * sw) ** 2))
+    if lam != 0.0:
+        basis = UNCERTAINTY_NOT_GIVEN
+    elif sw is not None:
+        basis = "from the stated reference uncertainties (weighted least squares, not rescaled)"
+        cov_rows = _engineering_covariance(_inverse_normal(Phi * sw[:, None]), scaler)
+    elif n > k1:
+        basis = "from the residual SD (ordinary least squares)"
+        cov_rows = _engineering_covariance(_inverse_normal(Phi) * (ssr / (n - k1)), scaler)
+    else:
+        basis = "not given: no residual degrees of freedom (n ≤ weights)"
     model = RidgeModel(
         spec,
         scaler,
@@ -207,8 +265,51 @@ def fit_model(
         n_weights=k1,
         penalise_intercept=penalise_intercept,
         prior="factory" if prior is None else "given",
+        uncertainties=unc,
+        covariance=cov_rows,
+        uncertainty_basis=basis,
+        weighted=sw is not None,
+        chi2=chi2,
     )
+    if cov_rows is not None:
+        names = list(report.coefficients)
+        unc = {k: math.sqrt(max(cov_rows[i][i], 0.0)) for i, k in enumerate(names)}
+        report = replace(report, uncertainties=unc)
     return model, report
+
+
+def _uncertainties(u_ref: ArrayLike, n: int) -> NDArray[np.float64]:
+    u = np.asarray(u_ref, dtype=np.float64)
+    if u.shape != (n,):
+        raise DataError(f"reference uncertainties have shape {u.shape}; expected ({n},)")
+    if not np.all(np.isfinite(u) & (u > 0.0)):
+        raise DataError("reference uncertainties must be finite and > 0")
+    return u
+
+
+def _inverse_normal(A: NDArray[np.float64]) -> NDArray[np.float64]:
+    """(AᵀA)⁻¹ from the SVD of A (AᵀA is never formed, so its digits are kept)."""
+    _, sv, vt = np.linalg.svd(A, full_matrices=False)
+    out: NDArray[np.float64] = (vt.T / sv**2) @ vt
+    return out
+
+
+def _engineering_covariance(cov_z: NDArray[np.float64], scaler: Scaler
+                            ) -> tuple[tuple[float, ...], ...]:
+    """The covariance of [θ_0, θ_z…] (standardised) carried to [offset, c…] (engineering).
+
+    c_j = θ_j / s_j and offset = θ_0 − Σ θ_j·μ_j/s_j, a linear map J, so Cov(c) = J Cov(θ) Jᵀ.
+    """
+    centre = np.asarray(scaler.centre, dtype=np.float64)
+    scale = np.asarray(scaler.scale, dtype=np.float64)
+    k1 = centre.shape[0] + 1
+    J = np.zeros((k1, k1))
+    J[0, 0] = 1.0
+    J[0, 1:] = -centre / scale
+    J[1:, 1:] = np.diag(1.0 / scale)
+    cov = J @ cov_z @ J.T
+    cov = (cov + cov.T) / 2.0
+    return tuple(tuple(float(v) for v in row) for row in cov)
 
 
 def cross_validate(

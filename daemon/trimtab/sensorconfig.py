@@ -424,7 +424,7 @@ def _keys_at(root: type[BaseModel], loc: Loc) -> list[str] | None:
             if not found:
                 return None
             tp = found[0].annotation
-        elif get_origin(tp) in (dict, tuple):
+        elif get_origin(tp) in (dict, tuple, list):
             tp = get_args(tp)[-1 if get_origin(tp) is dict else 0]
         else:
             return None

@@ -151,7 +151,13 @@ def decode_corrected_line(line: str) -> Corrected:
 def _read_lines(
     path: str | Path, decode: Callable[[str], _T], on_error: OnError | None
 ) -> Iterator[_T]:
-    with open(path, "rb") as f:
+    try:
+        f = open(path, "rb")  # noqa: SIM115 (closed by the with below)
+    except FileNotFoundError:
+        raise DataError(f"{path}: stream file not found") from None
+    except OSError as exc:
+        raise DataError(f"{path}: cannot read the stream file: {exc.strerror}") from exc
+    with f:
         for number, raw in enumerate(f, start=1):
             try:
                 line = raw.decode("utf-8")

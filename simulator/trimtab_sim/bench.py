@@ -207,17 +207,20 @@ def _replay(plan: Plan, workdir: Path, say: Say) -> dict[str, Any]:
     for _ in range(max(1, plan.rounds)):
         proc = subprocess.run(
             [sys.executable, "-m", "trimtab.cli", "replay", "-c", str(cfg), str(stream),
-             "-o", os.devnull], capture_output=True, text=True, timeout=600, check=False)
-        found = re.search(r"replay: (\d+) events, (\d+) corrected values in ([\d.]+) s",
-                          proc.stderr)
-        if proc.returncode != 0 or found is None:
+             "-o", os.devnull, "--json"], capture_output=True, text=True, timeout=600,
+            check=False)
+        try:
+            summary = json.loads(proc.stderr.strip().splitlines()[-1])
+        except (IndexError, json.JSONDecodeError):
+            summary = None
+        if proc.returncode != 0 or not isinstance(summary, dict):
             raise TrimtabError(f"bench: trimtab replay failed ({proc.returncode}): "
                                f"{proc.stderr[-500:]}")
-        events, seconds = int(found.group(1)), float(found.group(3))
+        events, seconds = int(summary["events"]), float(summary["seconds"])
         rate = events / max(seconds, 1e-9)
         if best is None or rate > best["events_per_s"]:
-            best = {"events": events, "corrected": int(found.group(2)), "seconds": seconds,
-                    "events_per_s": rate}
+            best = {"events": events, "corrected": int(summary["corrected"]),
+                    "seconds": seconds, "events_per_s": rate}
     assert best is not None
     say(f"replay: {best['events_per_s']:,.0f} events/s ({best['events']:,} events)")
     return best

@@ -1,14 +1,16 @@
-"""The ``trimtab-sim`` command line."""
+"""The trimtab-sim command line: generate, play, record and score streams; bench; demo."""
 
 from __future__ import annotations
 
 import argparse
 import importlib
 import importlib.util
+import os
 import sys
 from collections.abc import Sequence
 
 from trimtab.errors import ConfigError, TrimtabError
+from trimtab.options import deprecated
 
 COMMANDS: dict[str, tuple[str, str]] = {
     "make": ("make", "generate a seeded stream from a scenario"),
@@ -21,7 +23,14 @@ COMMANDS: dict[str, tuple[str, str]] = {
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="trimtab-sim", description=__doc__)
+    from trimtab import __version__
+
+    parser = argparse.ArgumentParser(
+        prog="trimtab-sim",
+        description="Simulated sensor streams for trimtab: generate, play, record and score "
+                    "them; measure the daemon; run the whole loop.",
+    )
+    parser.add_argument("--version", action="version", version=f"trimtab-sim {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
     for name, (module, help_text) in COMMANDS.items():
         if importlib.util.find_spec(f"trimtab_sim.commands.{module}") is None:
@@ -33,9 +42,31 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def old_spellings(argv: Sequence[str]) -> list[str]:
+    """0.1's option values that changed meaning, rewritten to 0.2's names with a notice.
+
+    ``record --quiet SECONDS`` is now ``--idle SECONDS`` (``--quiet`` is a flag);
+    ``bench --json FILE`` is now ``-o FILE`` (``--json`` is a flag that prints JSON).
+    """
+    out = list(argv)
+    command = next((a for a in out if not a.startswith("-")), None)
+    renames = {"record": ("--quiet", "--idle", "SECONDS"), "bench": ("--json", "-o", "FILE")}
+    if command not in renames:
+        return out
+    old, new, what = renames[command]
+    for i, arg in enumerate(out[:-1]):
+        value = out[i + 1]
+        takes_value = not value.startswith("-") and (
+            command == "bench" or value.replace(".", "", 1).isdigit())
+        if arg == old and takes_value:
+            deprecated(f"{old} {what}", f"{new} {what}")
+            out[i] = new
+    return out
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``trimtab-sim`` console script."""
-    args = build_parser().parse_args(argv)
+    args = build_parser().parse_args(old_spellings(sys.argv[1:] if argv is None else argv))
     try:
         code: int = args._run(args)
     except ConfigError as exc:
@@ -47,6 +78,22 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     except KeyboardInterrupt:
         return 130
+    except BrokenPipeError:
+        # the reader of our output went away (`| head`): stop quietly, as shell tools do
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 141
+    except OSError as exc:
+        # a file the command named could not be opened or written: one line, the file named
+        where = exc.filename if exc.filename is not None else "a file"
+        print(f"trimtab-sim {args.command}: {where}: {exc.strerror or exc}", file=sys.stderr)
+        return 2
+    except Exception as exc:  # the last line of defence: no traceback reaches a user
+        if os.environ.get("TRIMTAB_TRACEBACK"):
+            raise
+        print(f"trimtab-sim {args.command}: internal error: {type(exc).__name__}: {exc} "
+              "(a bug; TRIMTAB_TRACEBACK=1 shows where)", file=sys.stderr)
+        return 1
     return code
 
 

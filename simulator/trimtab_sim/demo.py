@@ -12,7 +12,6 @@ import signal
 import subprocess
 import sys
 import time
-import tomllib
 from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
@@ -23,6 +22,7 @@ from trimtab.config import Config, load_config
 from trimtab.errors import TrimtabError
 from trimtab.messages import Reading
 from trimtab.streamfile import read_events, write_corrected, write_events
+from trimtab.tomlfile import read_toml
 from trimtab.wiring import make_engine
 from trimtab_sim.broker import PrivateBroker, mosquitto_path
 from trimtab_sim.embedded_broker import EmbeddedBroker
@@ -64,7 +64,7 @@ def start_broker(workdir: Path, kind: str) -> tuple[Broker, str]:
 
 def demo_config(template: Path, out: Path, port: int, protocol: str) -> Path:
     """The daemon config for this run: the template with port, protocol and state dir set."""
-    data: dict[str, Any] = tomllib.loads(template.read_text(encoding="utf-8"))
+    data: dict[str, Any] = read_toml(template, "config file")
     data.setdefault("broker", {}).update(port=port, protocol=protocol)
     state = out / "state"
     shutil.rmtree(state, ignore_errors=True)
@@ -85,6 +85,7 @@ def run_demo(out: Path, *, scenario: Path | None = None, config: Path | None = N
     out.mkdir(parents=True, exist_ok=True)
     scenario = scenario or embedded("demo-scenario.toml")
     config = config or embedded("demo-daemon.toml")
+    load_config(config)  # refuse a bad config before minutes of work, naming the user's file
     stream = out / "stream.jsonl"
     write_stream(load_scenario(scenario), stream, seed)
     events = list(read_events(stream))

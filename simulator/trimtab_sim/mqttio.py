@@ -99,13 +99,18 @@ class Recorder:
     port: int
     received: list[Corrected] = field(default_factory=list)
     rejected: int = 0
+    client_id: str | None = None
+    """A fixed client id with ``persistent``: the broker keeps the session (and queues QoS 1
+    messages) while the recorder is away, as it does for the daemon."""
+    persistent: bool = False
 
     def __post_init__(self) -> None:
         self._codec = make_codec(self.cfg)
         _, _, self._t_out = topic_templates(self.cfg)
         self._lock = threading.Lock()
         self._last = time.monotonic()
-        self._client = _client(f"trimtab-sim-record-{time.monotonic_ns()}")
+        self._client = _client(self.client_id or f"trimtab-sim-record-{time.monotonic_ns()}",
+                               clean=not self.persistent)
         self._subscribed = threading.Event()
         self._client.on_message = self._on_message
         self._client.on_subscribe = lambda *a: self._subscribed.set()
@@ -129,8 +134,13 @@ class Recorder:
         return self
 
     def wait(self, *, count: int | None = None, quiet: float = 2.0,
-             timeout: float = 120.0, progress: Progress | None = None) -> list[Corrected]:
-        """Block until ``count`` messages arrived, or none for ``quiet`` s, or ``timeout``."""
+             timeout: float = 120.0, progress: Progress | None = None,
+             idle_ends_count: bool = False) -> list[Corrected]:
+        """Block until ``count`` messages arrived, or none for ``quiet`` s, or ``timeout``.
+
+        With a ``count``, silence ends the wait only when ``idle_ends_count`` is set (the
+        record command: a count that will never be reached must not wait for the timeout).
+        """
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             with self._lock:
@@ -140,7 +150,7 @@ class Recorder:
                 progress(n, count or 0)
             if count is not None and n >= count:
                 break
-            if count is None and n > 0 and idle >= quiet:
+            if (count is None or idle_ends_count) and n > 0 and idle >= quiet:
                 break
             time.sleep(0.05)
         with self._lock:

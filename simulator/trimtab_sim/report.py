@@ -237,10 +237,13 @@ def markdown(
     md += _md_table(["sensor", "series", *_HEAD], rows)
     md += [
         "",
-        "RMSE, MAE and bias (mean of value − truth) are in the stream's units. R² is the "
-        "coefficient of determination of the value as a prediction of truth (negative when "
-        "worse than the mean); slope and intercept are those of the least-squares line of "
-        "value against truth. NRMSE = RMSE / mean truth. The oracle is a hindsight ridge fit "
+        "RMSE, MAE and bias (mean of value − truth) are in the stream's units. R² here is "
+        "1 − Σ(value − truth)² / Σ(truth − mean truth)², the value taken as a prediction of "
+        "truth: it counts bias and gain error, and is negative when the value is worse than "
+        "the mean. (The EPA table below uses the other R², that of the least-squares line "
+        "of value against truth — the squared correlation — which ignores bias and gain, so "
+        "a raw sensor can score 0.95 there and below 0 here.) Slope and intercept are those "
+        "of that line. NRMSE = RMSE / mean truth. The oracle is a hindsight ridge fit "
         f"to every reference, refitted per {res.settings.oracle_days:g}-day block "
         f"(λ = {res.settings.oracle_lambda:g}); it bounds what a batch calibration could do.",
         "",
@@ -327,52 +330,96 @@ def plots_available() -> bool:
     return importlib.util.find_spec("matplotlib") is not None
 
 
-def draw_figures(joined: Sequence[Joined], out_dir: Path) -> dict[str, list[str]]:
-    """Time series, scatter against truth and error over time, one PNG each per sensor."""
+def _labelled(quantity: str, unit: str) -> str:
+    return f"{quantity} ({unit})" if unit else quantity
+
+
+def _dates(t: F64) -> Any:
+    """Epoch seconds as numpy datetimes (UTC) for a time axis with real dates."""
+    return (np.asarray(t) * 1e6).astype("datetime64[us]")
+
+
+def _time_axis(ax: Any) -> None:
+    import matplotlib.dates as mdates
+
+    locator = mdates.AutoDateLocator()  # type: ignore[no-untyped-call]
+    ax.xaxis.set_major_locator(locator)
+    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))  # type: ignore[no-untyped-call]
+    ax.set_xlabel("time (UTC)")
+
+
+def series_figure(j: Joined, unit: str = "") -> Any:
+    """Truth and corrected in front, the ± band shaded, references as marks, raw behind."""
+    import matplotlib.pyplot as plt
+
+    when = _dates(j.t)
+    fig, ax = plt.subplots(figsize=(11, 4))
+    ax.plot(when, j.inputs["raw"], lw=0.5, color="0.75", label="raw", zorder=1)
+    ax.fill_between(when, j.corrected - j.band, j.corrected + j.band, color="tab:blue",
+                    alpha=0.15, lw=0, label="± band", zorder=2)
+    ax.plot(when, j.corrected, lw=0.9, color="tab:blue", label="corrected", zorder=3)
+    ax.plot(when, j.truth, lw=0.9, color="black", label="truth", zorder=4)
+    if j.ref_t.size:
+        ax.plot(_dates(j.ref_t), j.ref_y, "o", ms=4, mfc="white", mec="tab:red", mew=1.2,
+                label="reference", zorder=5)
+    _time_axis(ax)
+    ax.set_ylabel(_labelled("value", unit))
+    ax.set_title(f"{j.sensor}: series")
+    ax.legend(loc="upper right", fontsize=8, ncols=5)
+    return fig
+
+
+def scatter_figure(j: Joined, unit: str = "") -> Any:
+    """Raw and corrected against truth, with the 1:1 line."""
+    import matplotlib.pyplot as plt
+
+    fig, ax = plt.subplots(figsize=(5.5, 5.5))
+    ax.plot(j.truth, j.inputs["raw"], ".", ms=1.5, color="0.7", label="raw")
+    ax.plot(j.truth, j.corrected, ".", ms=1.5, color="tab:blue", label="corrected")
+    lo = float(min(j.truth.min(), j.corrected.min()))
+    hi = float(max(j.truth.max(), j.corrected.max()))
+    ax.plot([lo, hi], [lo, hi], "k--", lw=1, label="1:1")
+    ax.set(xlabel=_labelled("truth", unit), ylabel=_labelled("value", unit),
+           title=f"{j.sensor}: against truth")
+    ax.legend(loc="upper left", fontsize=8)
+    return fig
+
+
+def error_figure(j: Joined, unit: str = "") -> Any:
+    """Raw and corrected error against truth over time, with the ± band."""
+    import matplotlib.pyplot as plt
+
+    when = _dates(j.t)
+    fig, ax = plt.subplots(figsize=(11, 3.5))
+    err = j.corrected - j.truth
+    ax.fill_between(when, -j.band, j.band, color="tab:blue", alpha=0.15, lw=0, label="± band")
+    ax.plot(when, j.inputs["raw"] - j.truth, lw=0.5, color="0.65", label="raw − truth")
+    ax.plot(when, err, lw=0.6, color="tab:blue", label="corrected − truth")
+    ax.axhline(0.0, color="black", lw=0.8)
+    _time_axis(ax)
+    ax.set_ylabel(_labelled("error", unit))
+    ax.set_title(f"{j.sensor}: error")
+    ax.legend(loc="upper right", fontsize=8)
+    return fig
+
+
+def draw_figures(joined: Sequence[Joined], out_dir: Path, unit: str = ""
+                 ) -> dict[str, list[str]]:
+    """Time series, scatter against truth and error over time, one PNG each per sensor.
+
+    ``unit`` (the scenario's signal unit) labels every value axis; time axes show dates.
+    """
     import matplotlib
 
     matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
 
     files: dict[str, list[str]] = {}
     for j in joined:
-        days = (j.t - j.t[0]) / DAY
-        names: list[str] = []
-
-        fig, ax = plt.subplots(figsize=(11, 4))
-        ax.plot(days, j.inputs["raw"], lw=0.6, color="0.65", label="raw")
-        ax.plot(days, j.corrected, lw=0.8, color="tab:blue", label="corrected")
-        if j.oracle is not None:
-            ax.plot(days, j.oracle, lw=0.6, color="tab:green", alpha=0.7, label="oracle")
-        ax.plot(days, j.truth, lw=0.7, color="black", label="truth", zorder=3)
-        if j.ref_t.size:
-            ax.plot(
-                (j.ref_t - j.t[0]) / DAY, j.ref_y, "o", ms=3, color="tab:red", label="reference"
-            )
-        ax.set(xlabel="days from first reading", ylabel="value", title=f"{j.sensor}: series")
-        ax.legend(loc="upper right", fontsize=8)
-        names.append(_save(fig, out_dir, f"{j.sensor}-series.png"))
-
-        fig, ax = plt.subplots(figsize=(5.5, 5.5))
-        ax.plot(j.truth, j.inputs["raw"], ".", ms=1.5, color="0.7", label="raw")
-        ax.plot(j.truth, j.corrected, ".", ms=1.5, color="tab:blue", label="corrected")
-        lo = float(min(j.truth.min(), j.corrected.min()))
-        hi = float(max(j.truth.max(), j.corrected.max()))
-        ax.plot([lo, hi], [lo, hi], "k--", lw=1, label="1:1")
-        ax.set(xlabel="truth", ylabel="value", title=f"{j.sensor}: against truth")
-        ax.legend(loc="upper left", fontsize=8)
-        names.append(_save(fig, out_dir, f"{j.sensor}-scatter.png"))
-
-        fig, ax = plt.subplots(figsize=(11, 3.5))
-        err = j.corrected - j.truth
-        ax.fill_between(days, -j.band, j.band, color="tab:blue", alpha=0.15, label="± band")
-        ax.plot(days, j.inputs["raw"] - j.truth, lw=0.5, color="0.65", label="raw − truth")
-        ax.plot(days, err, lw=0.6, color="tab:blue", label="corrected − truth")
-        ax.axhline(0.0, color="black", lw=0.8)
-        ax.set(xlabel="days from first reading", ylabel="error", title=f"{j.sensor}: error")
-        ax.legend(loc="upper right", fontsize=8)
-        names.append(_save(fig, out_dir, f"{j.sensor}-error.png"))
-        files[j.sensor] = names
+        files[j.sensor] = [
+            _save(series_figure(j, unit), out_dir, f"{j.sensor}-series.png"),
+            _save(scatter_figure(j, unit), out_dir, f"{j.sensor}-scatter.png"),
+            _save(error_figure(j, unit), out_dir, f"{j.sensor}-error.png"),
+        ]
     return files
 
 
@@ -392,13 +439,14 @@ def write_report(
     out_dir: Path,
     sources: dict[str, str],
     trajectories: dict[str, Trajectory] | None = None,
+    unit: str = "",
 ) -> list[Path]:
     """Write report.md and the figures into ``out_dir``; returns the files written."""
     out_dir.mkdir(parents=True, exist_ok=True)
     figures: dict[str, list[str]] = {}
     note = None
     if plots_available():
-        figures = draw_figures(joined, out_dir)
+        figures = draw_figures(joined, out_dir, unit)
         if trajectories:
             t0 = {j.sensor: float(j.t[0]) for j in joined}
             for sensor, name in draw_trajectories(trajectories, out_dir, t0).items():

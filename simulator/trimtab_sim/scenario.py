@@ -8,6 +8,7 @@ scenario's ``start``; intervals, windows and lags in seconds.
 
 from __future__ import annotations
 
+import re
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Annotated, Any, Literal
@@ -15,6 +16,7 @@ from typing import Annotated, Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from trimtab.errors import ConfigError, DecodeError
+from trimtab.sensorconfig import dotted, expand_errors
 from trimtab.tomlfile import read_toml
 from trimtab.topics import validate_sensor_id
 
@@ -317,25 +319,29 @@ def _cross_field_problems(sc: Scenario) -> list[str]:
     return out
 
 
-_CROSS = "Value error, "
-
-
-def _format_error(err: Any) -> list[str]:
-    loc = ".".join(str(p) for p in err.get("loc", ()))
-    msg = str(err.get("msg", "invalid"))
-    if not loc and msg.startswith(_CROSS):
-        # Cross-field problems already name their own field paths.
-        return [f"{line} [cross_field]" for line in msg[len(_CROSS) :].split("; ")]
-    return [f"{loc or '(scenario)'}: {msg} [{err.get('type', 'error')}]"]
+def _index_path(line: str) -> str:
+    """``sensors.0.interval: …`` with its path written as config errors write it: ``sensors[0]``."""
+    path, sep, rest = line.partition(": ")
+    return re.sub(r"\.(\d+)(?=\.|$)", r"[\1]", path) + sep + rest
 
 
 def parse_scenario(data: dict[str, Any], source: str = "scenario") -> Scenario:
-    """Validate a parsed TOML table; ConfigError lists every problem with its field path."""
+    """Validate a parsed TOML table; ConfigError lists ``source: path: message`` a problem.
+
+    The lines read like a config's: the file, the field path, what is wrong, and for an
+    unknown key the closest allowed one (``did you mean 'daily_amplitude'?``).
+    """
     try:
         return Scenario.model_validate(data)
     except ValidationError as exc:
-        errors = [line for e in exc.errors() for line in _format_error(e)]
-        raise ConfigError(f"{source}: invalid scenario ({len(errors)} problems)", errors) from exc
+        errors: list[str] = []
+        for loc, msg in expand_errors(exc, Scenario):
+            if not loc and ": " in msg:
+                # cross-field problems already name their own field paths
+                errors += [f"{source}: {_index_path(line)}" for line in msg.split("; ")]
+            else:
+                errors.append(f"{source}: {dotted(loc)}: {msg}")
+        raise ConfigError(f"{source}: invalid scenario ({len(errors)} problems)", errors) from None
 
 
 def load_scenario(path: str | Path) -> Scenario:

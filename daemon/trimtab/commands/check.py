@@ -1,4 +1,4 @@
-"""``trimtab check CONFIG``: validate a config and print it as it would run, with its proofs.
+"""``trimtab check -c CONFIG``: validate a config and print it as it would run, with its proofs.
 
 Prints the effective config (every default filled in) as TOML that loads back to the same
 config, the derived stability figures with the inequality each one checks, the memory in
@@ -18,13 +18,17 @@ from trimtab.engine import configured_prior, configured_scaler, spec_of
 from trimtab.errors import ConfigError
 from trimtab.figures import derived_figures
 from trimtab.model import RidgeModel
+from trimtab.options import deprecated
 from trimtab.sensorconfig import key
 from trimtab.terms import Scaler
 from trimtab.wiring import initial_models
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("config", metavar="CONFIG", help="the TOML config file to check")
+    p.add_argument("-c", "--config", dest="config", default=None, metavar="CONFIG",
+                   help="the TOML config file to check")
+    p.add_argument("old_config", nargs="?", default=None, metavar="CONFIG",
+                   help=argparse.SUPPRESS)  # the positional spelling of 0.1, kept one release
     p.add_argument(
         "--no-files",
         action="store_true",
@@ -37,6 +41,13 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    if args.old_config is not None:
+        if args.config is not None:
+            raise ConfigError("give the config once, with -c CONFIG")
+        deprecated("trimtab check CONFIG", "trimtab check -c CONFIG")
+        args.config = args.old_config
+    if args.config is None:
+        raise ConfigError("no config given: trimtab check -c CONFIG")
     source = str(args.config)
     cfg = load_config(source)
     if not args.no_files:

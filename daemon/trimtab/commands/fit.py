@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import bisect
 import csv
+import json
 import math
 from dataclasses import dataclass
 from datetime import datetime
@@ -36,6 +37,7 @@ class _Data:
     y: np.ndarray[Any, np.dtype[np.float64]]
     sensor: str | None
     dropped: int = 0
+    u: np.ndarray[Any, np.dtype[np.float64]] | None = None
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -56,9 +58,17 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--squares", default="", metavar="A,…", help="inputs to square")
     p.add_argument("--elapsed", action="store_true",
                    help="add a linear drift term: days since the first reference")
-    p.add_argument("--lambda", dest="lam", default="auto", metavar="λ|auto",
+    p.add_argument("--lambda", dest="lam", default=None, metavar="λ|auto",
                    help="ridge penalty in standardised units, or 'auto' to choose it by "
-                        "time-blocked cross-validation (default: auto)")
+                        "time-blocked cross-validation (default: auto; 0 with --uncertainty)")
+    p.add_argument("--uncertainty", default=None, metavar="COL",
+                   help="CSV column holding each reference's standard uncertainty (same "
+                        "units): fit by weighted least squares and print χ² (needs λ = 0)")
+    p.add_argument("--precision", type=int, default=6, metavar="N",
+                   help="significant digits of coefficients and uncertainties in the printed "
+                        "report (default: 6; --json always gives every digit)")
+    p.add_argument("--json", action="store_true",
+                   help="print the report as one JSON object (full digits) instead of text")
     p.add_argument("--folds", type=int, default=5, metavar="N",
                    help="cross-validation blocks for --lambda auto (default: 5)")
     p.add_argument("--prior", default="factory", metavar="factory|zero|W0,W1,…",
@@ -100,11 +110,21 @@ def run(args: argparse.Namespace) -> int:
         squares=_names(args.squares, "--squares", allow_empty=True),
         elapsed=args.elapsed,
     )
+    if not 1 <= args.precision <= 17:
+        raise DataError(f"--precision {args.precision}: give 1 to 17 significant digits")
+    if args.lam is None:
+        args.lam = "0" if args.uncertainty is not None else "auto"
+    if args.uncertainty is not None and args.lam == "auto":
+        raise DataError("--uncertainty fits by weighted least squares, which needs --lambda 0 "
+                        "(not auto): a weighted ridge is not offered")
     path = Path(args.data)
     if path.suffix.lower() in (".jsonl", ".ndjson"):
+        if args.uncertainty is not None:
+            raise DataError(f"{path}: --uncertainty needs a CSV with that column; stream "
+                            "files carry no reference uncertainties")
         data = _read_stream(path, spec, args.sensor, args.tolerance)
     else:
-        data = _read_csv(path, spec, args.reference, args.time)
+        data = _read_csv(path, spec, args.reference, args.time, args.uncertainty)
         data.sensor = args.sensor
     n = data.y.shape[0]
     if n == 0:
@@ -117,18 +137,27 @@ def run(args: argparse.Namespace) -> int:
         lam = cv.chosen
     else:
         lam = _lambda(args.lam)
+        if data.u is not None and lam != 0.0:
+            raise DataError(f"--uncertainty fits by weighted least squares, which needs "
+                            f"--lambda 0, not {args.lam}: a weighted ridge is not offered")
     model, report = fit_model(spec, data.X, data.t, data.y, lam=lam, memory=args.memory,
-                              prior=prior, penalise_intercept=args.penalise_intercept)
+                              prior=prior, penalise_intercept=args.penalise_intercept,
+                              u_ref=data.u)
     fit_doc: dict[str, Any] = {**report.to_dict(), "data": str(path), "prior": args.prior}
     if cv is not None:
         fit_doc["cross_validation"] = cv.to_dict()
     save_model_file(args.output, model, sensor=data.sensor, fit=fit_doc)
-    _print(path, data, spec, report, cv, args.output)
+    if args.json:
+        doc = {**fit_doc, "sensor": data.sensor, "dropped": data.dropped,
+               "output": str(args.output)}
+        print(json.dumps(doc, indent=2, ensure_ascii=False, allow_nan=False))
+    else:
+        _print(path, data, spec, report, cv, args.output, args.precision)
     return 0
 
 
 def _print(path: Path, data: _Data, spec: TermSpec, report: FitReport, cv: CVResult | None,
-           output: str) -> None:
+           output: str, digits: int = 6) -> None:
     head = f"trimtab fit: {path}, {report.n} references"
     if data.sensor:
         head += f", sensor {data.sensor}"
@@ -143,15 +172,30 @@ def _print(path: Path, data: _Data, spec: TermSpec, report: FitReport, cv: CVRes
         for lam, rmse in zip(cv.lams, cv.rmse, strict=True):
             mark = "  ← chosen" if lam == cv.chosen else ""
             print(f"  {lam:>10.4g}  {rmse:>12.6g}{mark}")
-    print(f"  {'term':<20} {'coefficient':>16}")
+    g = f".{digits}g"
+    width = max(17, digits + 8)
+    unc = report.uncertainties
+    head = f"  {'term':<20} {'coefficient':>{width}}"
+    print(head + (f" {'std. uncertainty':>{width}}" if unc is not None else ""))
     for name, value in report.coefficients.items():
         label = f"gain ({name})" if name == spec.inputs[0] else name
-        print(f"  {label:<20} {value:>16.9g}")
-    dof = report.n - report.n_weights
-    sd = "n/a (n ≤ weights)" if report.residual_sd is None else f"{report.residual_sd:.6g}"
+        cell = f" {unc[name]:>{width}{g}}" if unc is not None else ""
+        print(f"  {label:<20} {value:>{width}{g}}{cell}")
+    if report.covariance is not None:
+        print("covariance of the coefficients (engineering units, rows and columns in the "
+              "order above):")
+        names = list(report.coefficients)
+        for name, row in zip(names, report.covariance, strict=True):
+            print(f"  {name:<20}" + "".join(f" {v:>{width}{g}}" for v in row))
+    print(f"uncertainties {report.uncertainty_basis}")
+    dof = report.dof
+    if report.chi2 is not None:
+        print(f"χ²            {report.chi2:{g}}  on {dof} degrees of freedom (about {dof} if "
+              "the stated uncertainties match the scatter)")
+    sd = "n/a (n ≤ weights)" if report.residual_sd is None else f"{report.residual_sd:{g}}"
     print(f"residual SD   {sd}  (n − p = {dof})")
-    print(f"RMSE          {report.rmse:.6g}")
-    print(f"R²            {'n/a' if report.r2 is None else f'{report.r2:.9f}'}")
+    print(f"RMSE          {report.rmse:{g}}")
+    print(f"R²            {'n/a' if report.r2 is None else f'{report.r2:.{max(digits, 9)}f}'}")
     print(f"condition     {report.condition:.4g}  (standardised design)")
     print(f"n             {report.n}")
     print(f"λ             {report.lam:.4g}  (standardised units)")
@@ -217,14 +261,17 @@ def _number(text: str, where: str) -> float:
     return out
 
 
-def _read_csv(path: Path, spec: TermSpec, ref_col: str, time_col: str) -> _Data:
+def _read_csv(path: Path, spec: TermSpec, ref_col: str, time_col: str,
+              u_col: str | None = None) -> _Data:
     try:
-        fh = path.open(newline="", encoding="utf-8")
+        # utf-8-sig: a spreadsheet's byte-order mark must not become part of the first column
+        fh = path.open(newline="", encoding="utf-8-sig")
     except OSError as exc:
         raise DataError(f"{path}: cannot read ({exc.strerror})") from exc
     rows_x: list[list[float]] = []
     ts: list[float] = []
     ys: list[float] = []
+    us: list[float] = []
     with fh:
         reader = csv.reader(fh)
         try:
@@ -234,7 +281,7 @@ def _read_csv(path: Path, spec: TermSpec, ref_col: str, time_col: str) -> _Data:
         except (csv.Error, UnicodeDecodeError) as exc:
             raise DataError(f"{path}:1: unreadable header ({exc})") from exc
         col = {}
-        for name in (*spec.inputs, ref_col, time_col):
+        for name in (*spec.inputs, ref_col, time_col, *((u_col,) if u_col else ())):
             if name not in header:
                 raise DataError(f"{path}:1: no column {name!r} in the header (have {header})")
             col[name] = header.index(name)
@@ -254,10 +301,16 @@ def _read_csv(path: Path, spec: TermSpec, ref_col: str, time_col: str) -> _Data:
                 rows_x.append([_number(row[col[n]], at(n)) for n in spec.inputs])
                 ys.append(_number(row[col[ref_col]], at(ref_col)))
                 ts.append(parse_time(row[col[time_col]], at(time_col)))
+                if u_col:
+                    u = _number(row[col[u_col]], at(u_col))
+                    if not u > 0.0:
+                        raise DataError(f"{at(u_col)}: uncertainty {u:g} must be > 0")
+                    us.append(u)
         except (csv.Error, UnicodeDecodeError) as exc:
             raise DataError(f"{path}:{reader.line_num}: unreadable CSV ({exc})") from exc
     X = np.array(rows_x, dtype=np.float64).reshape(len(rows_x), len(spec.inputs))
-    return _Data(X, np.array(ts, dtype=np.float64), np.array(ys, dtype=np.float64), None)
+    return _Data(X, np.array(ts, dtype=np.float64), np.array(ys, dtype=np.float64), None,
+                 u=np.array(us, dtype=np.float64) if u_col else None)
 
 
 def _read_stream(path: Path, spec: TermSpec, sensor: str | None, tolerance: float) -> _Data:

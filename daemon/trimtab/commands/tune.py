@@ -15,6 +15,7 @@ import json
 import math
 import signal
 import sys
+import tempfile
 import time
 import tomllib
 from datetime import UTC, datetime
@@ -22,7 +23,9 @@ from pathlib import Path
 from types import FrameType
 from typing import Any
 
+from trimtab.commands.replay import counted
 from trimtab.config import load_config
+from trimtab.csvstream import readable_stream
 from trimtab.errors import DataError
 from trimtab.figures import derived_figures
 from trimtab.tunegrid import (
@@ -68,6 +71,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="write the whole config with the recommended settings (as trimtab "
                         "check prints it)")
     p.add_argument("--json", action="store_true", help="print the results as one JSON object")
+    p.add_argument("--layout", type=Path, default=None, metavar="LAYOUT.toml",
+                   help="read a CSV file (.csv) as the stream, with this column mapping "
+                        "(as trimtab convert --layout takes it)")
     p.add_argument("--quiet", action="store_true", help="no progress or notes on stderr")
 
 
@@ -185,7 +191,7 @@ def _when(t: float | None) -> str:
 
 def _report(result: TuneResult, args: argparse.Namespace) -> list[str]:
     best = result.best
-    lines = [f"trimtab tune: {args.stream}, {result.events} events, {len(result.sensors)} "
+    lines = [f"trimtab tune: {args.shown}, {result.events} events, {len(result.sensors)} "
              f"sensor(s), scored against {result.against}"]
     if result.split_t is None:
         lines.append("split: none: every event is in the tune part")
@@ -275,6 +281,14 @@ def _as_json(result: TuneResult) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
+    """Run on the stream file, or on a CSV file converted for the run with --layout."""
+    with tempfile.TemporaryDirectory(prefix="trimtab-tune-") as tmp:
+        args.shown = args.stream
+        args.stream = readable_stream(args.stream, args.layout, Path(tmp))
+        return _run(args)
+
+
+def _run(args: argparse.Namespace) -> int:
     if not 0.0 < args.split <= 1.0:
         raise DataError(f"--split {args.split:g}: give a fraction of the stream's time span in "
                         "(0, 1]")
@@ -302,12 +316,19 @@ def run(args: argparse.Namespace) -> int:
 
     with _Interrupts() as stop:
         if loud:
-            print(f"tune: reading {args.stream}", file=sys.stderr)
+            print(f"tune: reading {args.shown}", file=sys.stderr)
         run = tune_stream(args.stream, candidates, split=args.split, against=args.against,
                           should_stop=stop, read_progress=show_read, progress=show_eval,
                           base=cfg, folds=args.folds)
         result = run.result
         traces = [t.trace for t in run.tuners]
+    if traces and traces[0].events == 0 and traces[0].complete:
+        # nothing usable: a wrong or empty file must not look like a tuning run
+        rejected = traces[0].rejected
+        if rejected:
+            raise DataError(f"{args.shown}: no usable events: all "
+                            f"{sum(rejected.values()):,} lines rejected ({counted(rejected)})")
+        raise DataError(f"{args.shown}: no events (an empty stream file)")
     if tty:
         print("\r" + " " * 60 + "\r", end="", file=sys.stderr)
     elapsed = time.monotonic() - started
@@ -318,7 +339,7 @@ def run(args: argparse.Namespace) -> int:
               f"({k * result.events / max(elapsed, 1e-9):,.0f} candidate-events/s overall)",
               file=sys.stderr)
         if traces[0].rejected:
-            print(f"tune: rejected lines {dict(traces[0].rejected)}", file=sys.stderr)
+            print(f"tune: rejected lines: {counted(traces[0].rejected)}", file=sys.stderr)
     best = result.best
     if best is not None and best.candidate.config is not None:
         if args.config_out is not None:

@@ -16,8 +16,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--quick", action="store_true",
                    help="a short run that proves the bench works and nothing is lost "
                         "(figures too small to quote)")
-    p.add_argument("--json", type=Path, default=None, metavar="FILE",
-                   help="also write every figure, verdict and the machine as JSON")
+    p.add_argument("-o", "--output", type=Path, default=None, metavar="FILE",
+                   help="also write every figure, verdict and the machine as JSON to FILE")
+    p.add_argument("--json", action="store_true",
+                   help="print every figure as JSON instead of the table")
     p.add_argument("--workdir", type=Path, default=None,
                    help="keep the broker, daemon logs and state here (default: a temp dir, "
                         "removed afterwards)")
@@ -28,9 +30,10 @@ def run(args: argparse.Namespace) -> int:
         raise TrimtabError("the bench needs the mosquitto binary on PATH "
                            "(Debian/Ubuntu: apt-get install mosquitto)")
     result = run_bench(quick=args.quick, workdir=args.workdir)
-    if args.json is not None:
-        args.json.write_text(json.dumps(result, indent=1, allow_nan=True) + "\n")
-    print(format_table(result))
+    text = json.dumps(result, indent=1, allow_nan=True)
+    if args.output is not None:
+        args.output.write_text(text + "\n")
+    print(text if args.json else format_table(result))
     if not result["engine"]["river"]:
         print("\nriver not installed: its row was skipped (pip install -e '.[bench]')",
               file=sys.stderr)

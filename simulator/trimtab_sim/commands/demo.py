@@ -6,13 +6,17 @@ import argparse
 import sys
 from pathlib import Path
 
+from trimtab.options import DeprecatedFlag
 from trimtab_sim.demo import embedded, run_demo
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("-o", "--out", type=Path, default=Path("out/demo"),
+    p.add_argument("-o", "--output", dest="out", type=Path, default=Path("out/demo"),
+                   metavar="DIR",
                    help="directory for the stream, corrected values, state and report "
                         "(default out/demo)")
+    p.add_argument("--out", dest="out", type=Path, action=DeprecatedFlag, const="--output",
+                   default=argparse.SUPPRESS, help=argparse.SUPPRESS)
     p.add_argument("--scenario", type=Path, default=None,
                    help="scenario file (default: the embedded harbour-quay PM2.5 scenario)")
     p.add_argument("-c", "--config", type=Path, default=None,

@@ -8,6 +8,8 @@ import time
 from pathlib import Path
 
 from trimtab.config import load_config
+from trimtab.errors import DataError
+from trimtab.options import positive
 from trimtab.streamfile import read_events
 from trimtab_sim.mqttio import play
 from trimtab_sim.progress import progress_line
@@ -19,8 +21,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="the daemon's config: topics, payload codec, broker address")
     p.add_argument("--host", default=None, help="broker host (default: the config's)")
     p.add_argument("--port", type=int, default=None, help="broker port (default: the config's)")
-    p.add_argument("--speed", type=float, default=None,
-                   help="real time × this factor (default: as fast as the broker takes it)")
+    p.add_argument("--speed", type=positive, default=None, metavar="FACTOR",
+                   help="real time × this factor, > 0 (default: as fast as the broker takes it)")
     p.add_argument("--qos", type=int, choices=[0, 1, 2], default=1, help="publish QoS")
 
 
@@ -29,6 +31,8 @@ def run(args: argparse.Namespace) -> int:
     host = args.host or cfg.broker.host
     port = args.port or cfg.broker.port
     events = list(read_events(args.stream))
+    if not events:
+        raise DataError(f"{args.stream}: no events (an empty stream file)")
     shown = progress_line("play:")
 
     def progress(n: int, _total: int) -> None:

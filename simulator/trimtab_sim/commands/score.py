@@ -8,6 +8,8 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from trimtab.errors import DataError
+from trimtab.options import DeprecatedFlag
 from trimtab_sim.report import EPA_TARGETS, TargetCheck, check_targets, summary_table, write_report
 from trimtab_sim.scenario import load_scenario
 from trimtab_sim.score import DAY, Joined, Result, Settings, join, score, to_jsonable
@@ -17,9 +19,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     """Arguments of ``score``."""
     p.add_argument("stream", metavar="STREAM", help="the simulated stream (readings carry truth)")
     p.add_argument("corrected", metavar="CORRECTED", help="corrected values (JSON Lines)")
-    p.add_argument(
-        "-o", "--report-dir", metavar="DIR", help="write report.md, score.json and PNG figures here"
-    )
+    p.add_argument("-o", "--output", dest="report_dir", metavar="DIR",
+                   help="write report.md, score.json and PNG figures to this directory")
+    p.add_argument("--report-dir", dest="report_dir", action=DeprecatedFlag, const="--output",
+                   default=argparse.SUPPRESS, help=argparse.SUPPRESS)
     p.add_argument(
         "--json", action="store_true", help="print the figures as JSON instead of the table"
     )
@@ -86,8 +89,14 @@ def run(args: argparse.Namespace) -> int:
     from trimtab.streamfile import read_corrected, read_events
 
     settings, steps, targets = _settings(args)
-    joined: list[Joined] = join(read_events(args.stream), read_corrected(args.corrected))
-    res: Result = score(joined, settings, steps)
+    try:
+        joined: list[Joined] = join(read_events(args.stream), read_corrected(args.corrected))
+        res: Result = score(joined, settings, steps)
+    except DataError as exc:
+        text = str(exc)
+        if text.startswith((f"{args.stream}:", f"{args.corrected}:")):
+            raise  # already names its file and line
+        raise DataError(f"{args.stream} with {args.corrected}: {text}") from exc
     checks: list[TargetCheck] = (
         [check_targets(j, targets) for j in joined] if targets != "none" else []
     )
@@ -117,7 +126,8 @@ def run(args: argparse.Namespace) -> int:
             sources["scenario"] = str(args.scenario)
         if args.config:
             sources["config"] = str(args.config)
-        written = write_report(res, joined, checks, out, sources, trajectories)
+        unit = load_scenario(args.scenario).signal.unit if args.scenario else ""
+        written = write_report(res, joined, checks, out, sources, trajectories, unit=unit)
         (out / "score.json").write_text(
             json.dumps(doc, indent=2, ensure_ascii=False) + "\n", encoding="utf-8"
         )
