@@ -9,7 +9,7 @@ STAMP := $(VENV)/.installed
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
-	$(BIN)/python -m pip install --quiet -e '.[test,plots,metrics,broker,bench]'
+	$(BIN)/python -m pip install --quiet -e '.[test,plots,metrics,broker,bench,parquet]'
 	touch $(STAMP)
 
 setup: $(STAMP)

@@ -153,3 +153,65 @@ class TestLayoutFile:
         assert main(["convert", str(src), "--layout", str(path), "--tz", "UTC",
                      "-o", str(tmp_path / "o")]) == 2
         assert "not both (--tz given too)" in capsys.readouterr().err
+
+
+class TestParquet:
+    """The same layouts read Parquet files (written here by pyarrow, as a logger exports)."""
+
+    def _table(self, tmp_path: Path, times: list[object], tz: str | None) -> Path:
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        ts_type = pa.timestamp("s", tz=tz)
+        table = pa.table({
+            "Datum": pa.array(times, type=ts_type),
+            "NO2 WE": pa.array([12.5, 13.0, 14.0, None], type=pa.float64()),
+            "T Luft": pa.array([4.1, 4.0, 4.2, 4.3], type=pa.float64()),
+            "Referenz": pa.array([None, 11.2, None, 12.0], type=pa.float64()),
+        })
+        path = tmp_path / "logger.parquet"
+        pq.write_table(table, path)
+        return path
+
+    def test_local_times_give_the_events_the_csv_gives(self, tmp_path: Path) -> None:
+        """Naive local time stamps with tz: exactly the CSV logger's events (the CSV above)."""
+        from datetime import datetime
+
+        times = [datetime(2026, 3, 29, 1, 0), datetime(2026, 3, 29, 1, 30),
+                 datetime(2026, 3, 29, 3, 0), datetime(2026, 3, 29, 3, 30)]
+        path = self._table(tmp_path, times, None)
+        layout = CsvLayout(inputs={"raw": "NO2 WE", "temp": "T Luft"}, time="Datum",
+                           sensor="no2-07", reference="Referenz", window=1800.0,
+                           tz="Europe/Berlin")
+        got = read_csv_events(path, layout)
+        want = read_csv_events(_write(tmp_path, LOGGER), LAYOUT)
+        assert got.events == want.events and got.skipped == want.skipped
+        assert got.delimiter == "parquet"
+
+    def test_zoned_time_stamps_need_no_tz(self, tmp_path: Path) -> None:
+        """A UTC time stamp column carries its zone: the instants are those stamps."""
+        from datetime import UTC, datetime
+
+        times = [datetime(2026, 3, 29, h, tzinfo=UTC) for h in (0, 1, 2, 3)]
+        path = self._table(tmp_path, times, "UTC")
+        layout = CsvLayout(inputs={"raw": "NO2 WE"}, time="Datum", sensor="no2-07")
+        readings = [e for e in read_csv_events(path, layout).events if isinstance(e, Reading)]
+        assert [r.t for r in readings] == [t.timestamp() for t in times[:3]]
+
+    def test_convert_and_replay_take_parquet(self, tmp_path: Path,
+                                             capsys: pytest.CaptureFixture[str]) -> None:
+        """`trimtab convert` writes the stream; a file that is not Parquet is one clear line."""
+        from datetime import UTC, datetime
+
+        times = [datetime(2026, 3, 29, h, tzinfo=UTC) for h in (0, 1, 2, 3)]
+        path = self._table(tmp_path, times, "UTC")
+        out = tmp_path / "s.jsonl"
+        assert main(["convert", str(path), "-o", str(out), "--sensor", "no2-07", "--time",
+                     "Datum", "--inputs", "raw=NO2 WE", "--reference", "Referenz"]) == 0
+        assert len(list(read_events(out))) == 5
+        bad = tmp_path / "bad.parquet"
+        bad.write_text("t,raw\n1,2\n")
+        capsys.readouterr()
+        assert main(["convert", str(bad), "-o", str(out), "--sensor", "x"]) == 2
+        err = capsys.readouterr().err
+        assert "not a Parquet file" in err and "Traceback" not in err

@@ -13,7 +13,7 @@ from __future__ import annotations
 import csv
 import math
 from collections import Counter
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
@@ -196,35 +196,21 @@ def read_csv_events(path: Path, layout: CsvLayout) -> CsvResult:
             fixed = validate_sensor_id(layout.sensor)
         except DecodeError as exc:
             raise DataError(f"--sensor {layout.sensor!r}: {exc.detail or exc.reason}") from None
+    header, rows_of, delim = _table(path, layout)
     try:
-        text = path.read_bytes().decode("utf-8-sig")
-    except FileNotFoundError:
-        raise DataError(f"{path}: file not found") from None
-    except OSError as exc:
-        raise DataError(f"{path}: cannot read ({exc.strerror})") from exc
-    except UnicodeDecodeError as exc:
-        raise DataError(f"{path}: not UTF-8 text (byte {exc.start}); save it as UTF-8 CSV") \
-            from None
-    lines = text.splitlines(keepends=True)
-    if not lines or not lines[0].strip():
-        raise DataError(f"{path}:1: empty file; expected a header row")
-    delim = layout.delimiter or _sniff(lines[0], path)
-    reader = csv.reader(lines, delimiter=delim)
-    try:
-        header = [h.strip() for h in next(reader)]
         wanted = [layout.time, *layout.inputs.values()]
         wanted += [c for c in (layout.sensor_column, layout.reference) if c is not None]
         col: dict[str, int] = {}
         for name in wanted:
             if name not in header:
                 raise DataError(f"{path}:1: no column {name!r} in the header (have "
-                                f"{', '.join(repr(h) for h in header)}; delimiter {delim!r})")
+                                f"{', '.join(repr(h) for h in header)}"
+                                + ("" if delim is None else f"; delimiter {delim!r}") + ")")
             col[name] = header.index(name)
         events: list[tuple[float, int, Reading | Reference]] = []
         skipped: Counter[str] = Counter()
         rows = 0
-        for row in reader:
-            line = reader.line_num
+        for line, row in rows_of:
             if not row or all(not c.strip() for c in row):
                 continue
             rows += 1
@@ -260,9 +246,81 @@ def read_csv_events(path: Path, layout: CsvLayout) -> CsvResult:
                 events.append((t, 1, Reference(t=t, sensor=sensor, value=value,
                                                window=layout.window)))
     except csv.Error as exc:
-        raise DataError(f"{path}:{reader.line_num}: unreadable CSV ({exc})") from exc
+        raise DataError(f"{path}: unreadable CSV ({exc})") from exc
     events.sort(key=lambda e: (e[0], e[1]))  # event-time order; a reading before its reference
-    return CsvResult([e for _, _, e in events], rows, delim, skipped)
+    return CsvResult([e for _, _, e in events], rows, delim or "parquet", skipped)
+
+
+Rows = Iterator[tuple[int, list[str]]]
+
+
+def _table(path: Path, layout: CsvLayout) -> tuple[list[str], Rows, str | None]:
+    """The header and the numbered rows of a CSV file, or of a Parquet file (``.parquet``).
+
+    Parquet cells become the text the CSV path reads, so both go through one set of checks:
+    numbers as Python writes them, time stamps as ISO 8601 (with their zone when the column
+    has one; without, ``--tz`` says which), nulls as empty cells. The delimiter is None for
+    Parquet. Needs pyarrow (the ``parquet`` extra) for Parquet only.
+    """
+    if path.suffix.lower() == ".parquet":
+        return _parquet(path)
+    try:
+        text = path.read_bytes().decode("utf-8-sig")
+    except FileNotFoundError:
+        raise DataError(f"{path}: file not found") from None
+    except OSError as exc:
+        raise DataError(f"{path}: cannot read ({exc.strerror})") from exc
+    except UnicodeDecodeError as exc:
+        raise DataError(f"{path}: not UTF-8 text (byte {exc.start}); save it as UTF-8 CSV") \
+            from None
+    lines = text.splitlines(keepends=True)
+    if not lines or not lines[0].strip():
+        raise DataError(f"{path}:1: empty file; expected a header row")
+    delim = layout.delimiter or _sniff(lines[0], path)
+    reader = csv.reader(lines, delimiter=delim)
+    try:
+        header = [h.strip() for h in next(reader)]
+    except csv.Error as exc:
+        raise DataError(f"{path}:1: unreadable CSV header ({exc})") from exc
+
+    def rows() -> Rows:
+        for row in reader:
+            yield reader.line_num, row
+
+    return header, rows(), delim
+
+
+def _parquet(path: Path) -> tuple[list[str], Rows, str | None]:
+    try:
+        import pyarrow.parquet as pq
+    except ImportError:
+        raise DataError(f"{path}: reading Parquet needs pyarrow: pip install "
+                        "'trimtab[parquet]'") from None
+    try:
+        table = pq.read_table(path)
+    except FileNotFoundError:
+        raise DataError(f"{path}: file not found") from None
+    except OSError as exc:
+        raise DataError(f"{path}: cannot read as Parquet ({exc})") from exc
+    except ValueError as exc:  # pyarrow's ArrowInvalid: not Parquet at all
+        raise DataError(f"{path}: not a Parquet file ({exc})") from exc
+    header = [str(n) for n in table.column_names]
+    columns = [table.column(i).to_pylist() for i in range(table.num_columns)]
+
+    def cell(v: object) -> str:
+        if v is None:
+            return ""
+        if isinstance(v, datetime):
+            return v.isoformat()
+        if isinstance(v, float):
+            return repr(v)
+        return str(v)
+
+    def rows() -> Rows:
+        for i in range(table.num_rows):
+            yield i + 2, [cell(c[i]) for c in columns]  # "line" 1 is the header, as in CSV
+
+    return header, rows(), None
 
 
 def describe_span(result: CsvResult) -> str:
@@ -288,11 +346,12 @@ def csv_as_stream(path: Path, layout: CsvLayout, directory: Path) -> Path:
 def readable_stream(path: Path, layout_file: Path | None, directory: Path) -> Path:
     """The stream file a command reads: ``path`` itself, or a CSV file (``.csv``) converted
     into ``directory`` with the layout in ``layout_file``."""
-    if path.suffix.lower() != ".csv":
+    if path.suffix.lower() not in (".csv", ".parquet"):
         if layout_file is not None:
-            raise DataError(f"--layout is for CSV files; {path} is read as a stream file")
+            raise DataError(f"--layout is for CSV and Parquet files; {path} is read as a "
+                            "stream file")
         return path
     if layout_file is None:
-        raise DataError(f"{path}: a CSV file needs --layout LAYOUT.toml to say which column is "
-                        "what (or convert it first with trimtab convert)")
+        raise DataError(f"{path}: a {path.suffix.lower()[1:]} file needs --layout LAYOUT.toml to "
+                        "say which column is what (or convert it first with trimtab convert)")
     return csv_as_stream(path, load_layout(layout_file), directory)

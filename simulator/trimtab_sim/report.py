@@ -448,8 +448,7 @@ def write_report(
     if plots_available():
         figures = draw_figures(joined, out_dir, unit)
         if trajectories:
-            t0 = {j.sensor: float(j.t[0]) for j in joined}
-            for sensor, name in draw_trajectories(trajectories, out_dir, t0).items():
+            for sensor, name in draw_trajectories(trajectories, out_dir).items():
                 figures.setdefault(sensor, []).append(name)
     else:
         note = "matplotlib is not installed (the 'plots' extra), so no figures were drawn."

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable
 from dataclasses import dataclass, field
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
@@ -55,36 +56,46 @@ def trace(cfg: Config, events: Iterable[Reading | Reference]) -> dict[str, Traje
     return out
 
 
-def draw(trajectories: dict[str, Trajectory], out_dir: Path, t0: dict[str, float]
-         ) -> dict[str, str]:
-    """One PNG per sensor: a panel per weight, guard events marked; returns file names."""
+def draw(trajectories: dict[str, Trajectory], out_dir: Path) -> dict[str, str]:
+    """One PNG per sensor: a panel per weight on UTC dates, guard events marked; file names."""
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    colours = {"rolled_back": "tab:red", "level_shift": "tab:purple", "gated": "tab:orange",
-               "stuck": "tab:brown"}
+    # marker shapes as well as colours, sized to be seen at a glance (not hairlines)
+    styles = {"rolled_back": ("tab:red", "v", 46), "level_shift": ("tab:purple", "D", 34),
+              "gated": ("tab:orange", "x", 30), "stuck": ("tab:brown", "s", 26)}
     files: dict[str, str] = {}
     for sensor, tr in sorted(trajectories.items()):
         if not tr.t:
             continue
-        start = t0.get(sensor, tr.t[0])
-        days = [(t - start) / 86400.0 for t in tr.t]
+        when = [datetime.fromtimestamp(t, UTC) for t in tr.t]
         n = len(tr.names)
         fig, axes = plt.subplots(n, 1, figsize=(11, 1.6 * n + 0.8), sharex=True, squeeze=False)
         for k, (ax, name) in enumerate(zip(axes[:, 0], tr.names, strict=True)):
-            ax.plot(days, [w[k] for w in tr.weights], lw=0.9, color="tab:blue")
+            ys = [w[k] for w in tr.weights]
+            ax.plot(when, ys, lw=1.0, color="tab:blue", zorder=2)
             ax.set_ylabel(name, fontsize=8)
-            for status, colour in colours.items():
-                xs = [(t - start) / 86400.0 for t, s in tr.events if s == status]
-                if xs:
-                    ax.vlines(xs, 0, 1, transform=ax.get_xaxis_transform(), colors=colour,
-                              lw=0.6, alpha=0.6, label=status.replace("_", " ") if k == 0 else None)
+            at = {t: y for t, y in zip(tr.t, ys, strict=True)}
+            for status, (colour, marker, size) in styles.items():
+                hits = [(datetime.fromtimestamp(t, UTC), at.get(t)) for t, s in tr.events
+                        if s == status]
+                if not hits:
+                    continue
+                xs = [x for x, _ in hits]
+                ax.vlines(xs, 0, 1, transform=ax.get_xaxis_transform(), colors=colour,
+                          lw=1.4, alpha=0.25, zorder=1)
+                pts = [(x, y) for x, y in hits if y is not None]
+                if pts:
+                    ax.scatter([x for x, _ in pts], [y for _, y in pts], s=size, c=colour,
+                               marker=marker, zorder=3,
+                               label=status.replace("_", " ") if k == 0 else None)
         axes[0, 0].set_title(f"{sensor}: weights in engineering units after each reference")
         if tr.events:
             axes[0, 0].legend(loc="upper right", fontsize=7)
-        axes[-1, 0].set_xlabel("days from first reading")
+        axes[-1, 0].set_xlabel("date (UTC)")
+        fig.autofmt_xdate()
         name = f"{sensor}-weights.png"
         fig.tight_layout()
         fig.savefig(out_dir / name, dpi=100)

@@ -1,4 +1,4 @@
-"""``trimtab convert``: an operator's CSV file (a logger's or a spreadsheet's) to a stream file.
+"""``trimtab convert``: an operator's CSV or Parquet file (a logger's, a spreadsheet's) to a stream.
 
 Columns are mapped on the command line: ``--inputs raw=no2_we,temp=T_air`` names each stream
 input and the column it comes from (a bare name means the same on both sides). The result is
@@ -20,7 +20,9 @@ from trimtab.streamfile import write_events
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     """The options of ``trimtab convert``."""
-    p.add_argument("data", metavar="DATA.csv", help="the CSV file, with a header row")
+    p.add_argument("data", metavar="DATA.csv",
+                   help="the CSV file, with a header row, or a Parquet file (.parquet; needs "
+                        "the parquet extra)")
     p.add_argument("-o", "--output", required=True, metavar="STREAM.jsonl",
                    help="the stream file to write (replaced)")
     p.add_argument("--layout", type=Path, metavar="LAYOUT.toml",
