@@ -27,6 +27,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from trimtab.cli import main as cli_main
 from trimtab.commands.check import to_toml
 from trimtab.commands.replay import replay
 from trimtab.config import Config, load_config, parse_config
@@ -286,6 +287,46 @@ class TestEqualsReplay:
             assert got == _replay_scores(perturbed.stream, out, run.tuners[0].split_t)
             seen |= {k for k, v in state["counts"].items() if v}
         assert {"scaler_moved", "reference_rolled_back", "reference_level_shift"} <= seen
+
+    def test_terms_equal_replay_state_and_score(self, perturbed: Run) -> None:
+        """Candidates that add products and squares (one record pass each) equal replay."""
+        cfg = parse_config(perturbed.base)
+        grid: dict[str, list[Value]] = {"products": [(), (("raw", "temp"),)],
+                                        "squares": [(), ("temp",)]}
+        cands = build_candidates(perturbed.base, cfg, grid_settings(cfg, grid), label="grid",
+                                 include_current=False)
+        assert len(cands) == 4 and all(c.valid for c in cands)
+        run = tune_stream(perturbed.stream, cands, split=0.7)
+        assert len(run.tuners) == 4
+        by_index = {o.candidate.index: o for o in run.result.outcomes}
+        for cand in cands:
+            assert cand.config is not None
+            state, out = _replay(cand.config, perturbed.stream)
+            assert json.loads(json.dumps(run.engine_state(cand.index))) == state
+            o = by_index[cand.index]
+            got = [(o.tune.sse, o.tune.total, o.tune.n), (o.test.sse, o.test.total, o.test.n)]
+            assert got == _replay_scores(perturbed.stream, out, run.tuners[0].split_t)
+        names = {tuple(json.loads(json.dumps(run.engine_state(c.index)))["sensors"][
+            "pm25-quay-01"]["model"]["spec"]["squares"]) for c in cands}
+        assert names == {(), ("temp",)}
+
+    def test_terms_that_do_not_fit_the_initial_state_are_refused(self, tmp_path: Path) -> None:
+        """With an initial_state, a candidate with other terms is refused with the reason."""
+        data = tmp_path / "fit.csv"
+        data.write_text("t,raw,temp,ref\n" + "".join(
+            f"{1767225600 + 3600 * i},{40 + i % 7},{10 + i % 5},{41 + i % 7}\n"
+            for i in range(30)))
+        model = tmp_path / "m.json"
+        assert cli_main(["fit", str(data), "--inputs", "raw,temp", "-o", str(model)]) == 0
+        base = _config_dict(tmp_path / "state")
+        base["sensors"] = {"ids": ["s1"], "defaults": {"inputs": ["raw", "temp"],
+                                                        "initial_state": str(model)}}
+        cfg = parse_config(base)
+        cands = build_candidates(base, cfg, grid_settings(cfg, {"squares": [(), ("temp",)]}),
+                                 label="grid", include_current=False)
+        plain, squared = cands
+        assert plain.valid and not squared.valid
+        assert any("has terms ['raw', 'temp']" in why for why in squared.refused)
 
     def test_replay_command_gives_the_same_state(self, perturbed: Run, tmp_path: Path) -> None:
         """`trimtab replay --state-out` as a real process leaves the tuner's state, bit for bit."""

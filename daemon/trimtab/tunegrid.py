@@ -21,6 +21,8 @@ Grid file (TOML, one table; every key optional, each a non-empty list)::
     huber_delta = ["none", 2.0]      # "none": the squared loss (the key left unset)
     gate_k = [3.0, 4.0]
     normalised = [true, false]
+    products = [[], [["raw", "rh"]]]   # terms: [sensors.defaults] products and squares
+    squares = [[], ["raw"]]
     scaler = ["follow", "fixed"]
     scaler_width = [2.0, 3.0, 4.0]
     scaler_span = [604800.0, 2592000.0]
@@ -46,6 +48,7 @@ import numpy as np
 from trimtab.config import Config, LearningSettings, parse_config
 from trimtab.errors import ConfigError, DataError
 from trimtab.tomlfile import read_toml
+from trimtab.wiring import initial_models
 
 __all__ = [
     "MAX_CANDIDATES",
@@ -61,12 +64,14 @@ __all__ = [
 
 TUNED = ("alpha", "alpha_max", "lambda", "memory", "huber_delta", "gate_k", "normalised",
          "step_adapt", "step_gap", "scaler", "scaler_width", "scaler_span", "rollback_factor",
-         "alpha_recovery")
+         "alpha_recovery", "products", "squares")
 """The ``[learning]`` keys a candidate may set, as the config file spells them."""
 
 MAX_CANDIDATES = 10000
 
-Value = float | int | bool | str | None
+Value = float | int | bool | str | tuple[Any, ...] | None
+TERMS = ("products", "squares")
+"""Tuned keys of ``[sensors.defaults]`` (the model's terms); the others are ``[learning]``'s."""
 _NUMBER_KEYS = ("alpha", "alpha_max", "lambda", "gate_k", "step_gap", "scaler_width",
                 "scaler_span", "rollback_factor", "alpha_recovery")
 _CHOICES = {"scaler": ("follow", "fixed"), "step_adapt": ("gap", "none")}
@@ -96,7 +101,9 @@ def current_settings(cfg: Config) -> dict[str, Value]:
             "huber_delta": lc.huber_delta, "gate_k": lc.gate_k, "normalised": lc.normalised,
             "step_adapt": lc.step_adapt, "step_gap": lc.step_gap, "scaler": lc.scaler,
             "scaler_width": lc.scaler_width, "scaler_span": lc.scaler_span,
-            "rollback_factor": lc.rollback_factor, "alpha_recovery": lc.alpha_recovery}
+            "rollback_factor": lc.rollback_factor, "alpha_recovery": lc.alpha_recovery,
+            "products": tuple(tuple(p) for p in cfg.sensors.defaults.products),
+            "squares": tuple(cfg.sensors.defaults.squares)}
 
 
 def _is_number(v: object) -> bool:
@@ -104,6 +111,16 @@ def _is_number(v: object) -> bool:
 
 
 def _check_value(key: str, v: object, where: str) -> Value:
+    if key == "products":
+        if not isinstance(v, list) or not all(
+                isinstance(p, list) and len(p) == 2 and all(isinstance(x, str) for x in p)
+                for p in v):
+            raise DataError(f'{where}: expected a list of input pairs, e.g. [["raw", "rh"]]')
+        return tuple((str(a), str(b)) for a, b in v)
+    if key == "squares":
+        if not isinstance(v, list) or not all(isinstance(x, str) for x in v):
+            raise DataError(f'{where}: expected a list of input names, e.g. ["raw"]')
+        return tuple(str(x) for x in v)
     if key in _NUMBER_KEYS:
         if not _is_number(v):
             raise DataError(f"{where}: expected a finite number, got {v!r}")
@@ -210,8 +227,13 @@ def candidate_document(raw: Mapping[str, Any], settings: Mapping[str, Value]) ->
     learning = data.get("learning")
     if not isinstance(learning, dict):
         learning = data["learning"] = {}
+    sensors = data.setdefault("sensors", {})
+    defaults = sensors.setdefault("defaults", {})
     for key, value in settings.items():
-        if value is None:
+        if key in TERMS:
+            if isinstance(value, tuple | list):  # None: the config's own terms
+                defaults[key] = [list(v) if isinstance(v, tuple) else v for v in value]
+        elif value is None:
             learning.pop(key, None)
         else:
             learning[key] = value
@@ -269,7 +291,9 @@ def build_candidates(raw: Mapping[str, Any], cfg: Config,
         try:
             c: Config | None = parse_config(candidate_document(raw, s), f"candidate {i}")
             refused: tuple[str, ...] = ()
+            if c is not None and any(s[k] != cur[k] for k in TERMS if k in s):
+                initial_models(c)  # other terms must still fit each initial_state file
         except ConfigError as exc:
-            c, refused = None, tuple(exc.errors)
+            c, refused = None, tuple(exc.errors) or (f"candidate {i}: {exc}",)
         out.append(Candidate(i, s, c, refused, tuple(labels)))
     return out

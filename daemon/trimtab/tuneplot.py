@@ -27,8 +27,7 @@ def plot_scores(result: TuneResult, path: Path) -> None:
         rmse = o.tune.rmse
         if rmse is None:
             continue
-        key = (float(o.candidate.settings["alpha"] or 0.0),
-               float(o.candidate.settings["lambda"] or 0.0))
+        key = (_number(o.candidate.settings["alpha"]), _number(o.candidate.settings["lambda"]))
         best[key] = min(rmse, best.get(key, rmse))
     if not best:
         raise DataError("--plot: no candidate was scored, nothing to plot")
@@ -41,8 +40,8 @@ def plot_scores(result: TuneResult, path: Path) -> None:
         fig.colorbar(points, ax=ax, label=f"tune RMSE (against {result.against})")
         chosen = result.best
         if chosen is not None:
-            ax.scatter([float(chosen.candidate.settings["alpha"] or 0.0)],
-                       [float(chosen.candidate.settings["lambda"] or 0.0)],
+            ax.scatter([_number(chosen.candidate.settings["alpha"])],
+                       [_number(chosen.candidate.settings["lambda"])],
                        s=260, facecolors="none", edgecolors="red", linewidths=2.0,
                        label="recommended")
             ax.legend(loc="best")
@@ -61,3 +60,8 @@ def plot_scores(result: TuneResult, path: Path) -> None:
             raise DataError(f"{path}: cannot write the plot: {exc.strerror}") from exc
     finally:
         plt.close(fig)
+
+
+def _number(v: object) -> float:
+    """A tuned α or λ as a float (they are always numbers; 0 when unset)."""
+    return float(v) if isinstance(v, int | float) else 0.0

@@ -28,6 +28,7 @@ part the rest; candidates are ranked by their tune RMSE only.
 from __future__ import annotations
 
 import copy
+import json
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
@@ -43,7 +44,7 @@ from trimtab.guards import Guard
 from trimtab.model import RidgeModel
 from trimtab.stability import STEP_BOUND, step_check
 from trimtab.terms import Scaler
-from trimtab.tunegrid import TUNED, Candidate
+from trimtab.tunegrid import TERMS, TUNED, Candidate
 from trimtab.tunetrace import SensorTrace, Trace, record
 from trimtab.vengine import STATUSES, Common, Settings, VEngine, phi_rows
 
@@ -424,7 +425,7 @@ class Tuner:
         return state
 
 
-def _toml_value(v: float | int | bool | str) -> str:
+def _toml_value(v: object) -> str:
     if isinstance(v, bool):
         return "true" if v else "false"
     if isinstance(v, str):
@@ -433,22 +434,33 @@ def _toml_value(v: float | int | bool | str) -> str:
 
 
 def snippet(outcome: Outcome) -> str:
-    """The recommended settings as a ``[learning]`` table to put in the config file."""
+    """The recommended settings as ``[learning]`` (and ``[sensors.defaults]`` terms) tables."""
     s = outcome.candidate.settings
     lines = ["[learning]"]
     for key in TUNED:
+        if key in TERMS:
+            continue
         v = s[key]
         if v is None:
             lines.append(f"# {key} unset (squared loss)")
         else:
             lines.append(f"{key} = {_toml_value(v)}")
+    lines.append("[sensors.defaults]")
+    for key in TERMS:
+        v = s[key]
+        assert isinstance(v, tuple)
+        lines.append(f"{key} = {json.dumps([list(x) if isinstance(x, tuple) else x for x in v])}")
     return "\n".join(lines)
 
 
-def scaler_group(cfg: Config) -> tuple[str | float, ...]:
-    """What a candidate's recorded pass depends on beyond pairing: how its scaler moves."""
+def scaler_group(cfg: Config) -> tuple[Any, ...]:
+    """What a candidate's recorded pass depends on beyond pairing: its terms and how its
+    scaler moves."""
     lc = cfg.learning
-    return ("fixed",) if lc.scaler == "fixed" else ("follow", lc.scaler_span, lc.scaler_width)
+    d = cfg.sensors.defaults
+    terms = (tuple(tuple(p) for p in d.products), tuple(d.squares))
+    return (terms, "fixed") if lc.scaler == "fixed" else (
+        terms, "follow", lc.scaler_span, lc.scaler_width)
 
 
 @dataclass(slots=True)
@@ -478,7 +490,7 @@ def tune_stream(stream: str | Path, candidates: Sequence[Candidate], *, split: f
     candidates of one group share one record (:func:`trimtab.tunetrace.record`) and advance
     together; the results are merged and ranked as one.
     """
-    groups: dict[tuple[str | float, ...], list[Candidate]] = {}
+    groups: dict[tuple[Any, ...], list[Candidate]] = {}
     for c in candidates:
         if c.config is not None:
             groups.setdefault(scaler_group(c.config), []).append(c)

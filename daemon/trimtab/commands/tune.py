@@ -113,11 +113,14 @@ def _settings_cells(c: Candidate) -> list[str]:
     scaler = ("fixed" if s["scaler"] == "fixed" else
               f"{s['scaler_width']:g}sd/{_num(s['scaler_span']) / 86400.0:.3g}d")
     step = "-" if s["step_adapt"] == "none" else f"gap {_num(s['step_gap']) / 3600.0:.3g}h"
+    products, squares = s["products"], s["squares"]
+    assert isinstance(products, tuple) and isinstance(squares, tuple)
+    extra = [f"{a}*{b}" for a, b in products] + [f"{x}^2" for x in squares]
     top = c.config.learning.alpha_max if c.config is not None else s["alpha_max"]
     return [f"{s['alpha']:g}", f"{top:g}", f"{s['lambda']:g}", str(s["memory"]),
             "-" if delta is None else f"{delta:g}", f"{s['gate_k']:g}",
             "yes" if s["normalised"] else "no", step, scaler, f"{s['rollback_factor']:g}",
-            f"{s['alpha_recovery']:g}"]
+            f"{s['alpha_recovery']:g}", "+".join(extra) or "-"]
 
 
 def _num(v: object) -> float:
@@ -127,7 +130,7 @@ def _num(v: object) -> float:
 
 def _table(result: TuneResult, top: int) -> list[str]:
     head = ["rank", "alpha", "alpha_max", "lambda", "memory", "huber", "gate_k", "norm", "step",
-            "scaler", "rollback", "recovery", "tune RMSE",
+            "scaler", "rollback", "recovery", "terms+", "tune RMSE",
             "test RMSE", "bias", "rollbacks", "gated", "margin", "reached", ""]
     rows = [head]
     ranked = list(enumerate(result.outcomes, start=1))
@@ -175,11 +178,14 @@ def _refused(result: TuneResult) -> list[str]:
     return out
 
 
-def _cell(v: float | int | bool | str) -> str:
+def _cell(v: object) -> str:
     if isinstance(v, bool):
         return "true" if v else "false"
     if isinstance(v, str):
         return v
+    if isinstance(v, tuple):
+        return json.dumps([list(x) if isinstance(x, tuple) else x for x in v])
+    assert isinstance(v, int | float)
     return f"{v:g}"
 
 
