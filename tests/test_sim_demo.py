@@ -167,4 +167,11 @@ class TestTrajectories:
         assert sim_main(["score", str(stream), str(out), "-o", str(tmp_path / "rep"),
                          "--config", str(conf)]) == 0
         assert (tmp_path / "rep" / "no2-roof-01-weights.png").stat().st_size > 0
-        assert "no2-roof-01-weights.png" in (tmp_path / "rep" / "report.md").read_text()
+        report = (tmp_path / "rep" / "report.md").read_text()
+        assert "no2-roof-01-weights.png" in report
+        # the guards' counts are in the report, equal to the engine's own
+        guards = report.split("## Guards")[1].split("\n## ")[0]
+        stats = engine.stats()["sensors"]["no2-roof-01"]
+        row = next(line for line in guards.splitlines() if line.startswith("| no2-roof-01 |"))
+        cells = [c.strip() for c in row.strip("|").split("|")]
+        assert cells[5] == str(stats["rollbacks"]) and cells[6] == str(stats["recoveries"])

@@ -224,6 +224,7 @@ def markdown(
     figures: dict[str, list[str]],
     sources: dict[str, str],
     plots_note: str | None,
+    trajectories: dict[str, Trajectory] | None = None,
 ) -> str:
     """The text of report.md."""
     md = ["# trimtab-sim score report", ""]
@@ -270,6 +271,23 @@ def markdown(
             for s in [*res.sensors, res.overall]
         ],
     )
+    if trajectories:
+        md += ["", "## Guards", ""]
+        md += ["What the daemon's guards did, replayed through its config: references gated "
+               "as suspects, accepted level shifts, stuck references, rollbacks and the "
+               "references after which α recovered toward its setting; the band's coverage "
+               "of the references it was calibrated on.", ""]
+        md += _md_table(
+            ["sensor", "references", "gated", "level shifts", "stuck", "rollbacks",
+             "α recoveries", "α at the end", "band coverage at references"],
+            [[sensor, str(len(tr.t)),
+              *(str(sum(1 for _, x in tr.events if x == m)) for m in
+                ("gated", "level_shift", "stuck", "rolled_back")),
+              str(tr.guard.get("recoveries", "–")), _num(tr.guard.get("alpha")),
+              "–" if tr.guard.get("band_coverage") is None else
+              f"{100 * tr.guard['band_coverage']:.1f}%"]
+             for sensor, tr in sorted(trajectories.items()) if tr.t],
+        )
     recs = [(s.sensor, r) for s in res.sensors for r in s.recovery]
     if recs:
         md += ["", "## Recovery after drift steps", ""]
@@ -453,5 +471,6 @@ def write_report(
     else:
         note = "matplotlib is not installed (the 'plots' extra), so no figures were drawn."
     path = out_dir / "report.md"
-    path.write_text(markdown(res, targets, figures, sources, note), encoding="utf-8")
+    path.write_text(markdown(res, targets, figures, sources, note, trajectories),
+                    encoding="utf-8")
     return [path, *(out_dir / f for fs in figures.values() for f in fs)]

@@ -31,6 +31,8 @@ class Trajectory:
     t: list[float] = field(default_factory=list)
     weights: list[list[float]] = field(default_factory=list)
     events: list[tuple[float, str]] = field(default_factory=list)
+    guard: dict[str, Any] = field(default_factory=dict)
+    """The engine's figures at the end: rollbacks, α recoveries and α, band coverage."""
 
 
 def trace(cfg: Config, events: Iterable[Reading | Reference]) -> dict[str, Trajectory]:
@@ -53,6 +55,11 @@ def trace(cfg: Config, events: Iterable[Reading | Reference]) -> dict[str, Traje
             tr.weights.append(list(coefficients.values()))
             if outcome.status in MARKED:
                 tr.events.append((e.t, outcome.status))
+    stats = engine.stats()["sensors"]
+    for sensor, tr in out.items():
+        s = stats.get(sensor, {})
+        tr.guard = {"rollbacks": s.get("rollbacks"), "recoveries": s.get("recoveries"),
+                    "alpha": s.get("alpha"), "band_coverage": s.get("band_coverage")}
     return out
 
 
@@ -108,6 +115,7 @@ def summary(trajectories: dict[str, Trajectory]) -> dict[str, Any]:
     """Counts of guard events and the final weights per sensor (for score.json)."""
     return {
         s: {"references": len(tr.t), "final": dict(zip(tr.names, tr.weights[-1], strict=True)),
-            "events": {m: sum(1 for _, x in tr.events if x == m) for m in MARKED}}
+            "events": {m: sum(1 for _, x in tr.events if x == m) for m in MARKED},
+            "guard": tr.guard}
         for s, tr in sorted(trajectories.items()) if tr.t
     }
