@@ -352,6 +352,7 @@ def readable_stream(path: Path, layout_file: Path | None, directory: Path) -> Pa
                             "stream file")
         return path
     if layout_file is None:
-        raise DataError(f"{path}: a {path.suffix.lower()[1:]} file needs --layout LAYOUT.toml to "
-                        "say which column is what (or convert it first with trimtab convert)")
+        kind = "Parquet" if path.suffix.lower() == ".parquet" else "CSV"
+        raise DataError(f"{path}: a {kind} file needs --layout LAYOUT.toml to say which column "
+                        "is what (or convert it first with trimtab convert)")
     return csv_as_stream(path, load_layout(layout_file), directory)
