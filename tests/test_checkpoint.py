@@ -14,7 +14,12 @@ from pathlib import Path
 import pytest
 
 from trimtab.checkpoint import CheckpointStore, checkpoint_name
+from trimtab.config import load_config
 from trimtab.errors import StateError
+from trimtab.messages import Reference
+from trimtab.wiring import make_engine
+
+from .support import synthetic_stream, write_config
 
 # A child that writes checkpoint 1, arms a counter over the file-system calls a checkpoint
 # write makes, and SIGKILLs itself just before the call numbered `kill_at` while writing
@@ -203,3 +208,28 @@ class TestCheckpointKill:
             assert kill_at < 100, "the write never finished"
         assert seen == {1, 2}
         assert kill_at > 5  # the calls of a write were each a crash point
+
+
+class TestOlderState:
+    def test_a_version_1_state_loads_and_keeps_learning(self, tmp_path: Path) -> None:
+        """A state written before the followed scaler and calibrated band loads: models and
+        buffers as they were, the new parts at their starting values, learning goes on."""
+        data = Path(__file__).parent / "data" / "state-v1" / "engine-state-v1.json"
+        old = json.loads(data.read_text(encoding="utf-8"))
+        assert old["version"] == 1
+        engine = make_engine(load_config(write_config(tmp_path, 1883)))
+        engine.load_state(old)
+        for sensor in ("s1", "s2"):
+            model = engine.model(sensor)
+            assert model is not None
+            assert list(model.theta) == old["sensors"][sensor]["model"]["theta"]
+        later = [e for e in synthetic_stream(400) if e.t > max(
+            s["last_reading_t"] for s in old["sensors"].values())]
+        before = {s: engine.model(s).updates for s in ("s1", "s2")}  # type: ignore[union-attr]
+        for e in later:
+            engine.process(e)
+        assert any(isinstance(e, Reference) for e in later)
+        for sensor in ("s1", "s2"):
+            model = engine.model(sensor)
+            assert model is not None and model.updates > before[sensor]
+        assert engine.state_dict()["version"] == 2

@@ -602,7 +602,29 @@ class Engine:
             "ref_window": [st.ref_window, st.ref_window_n],
         }
 
-    def _load_sensor(self, name: str, d: Mapping[str, Any]) -> None:
+    def _upgraded(self, d: Mapping[str, Any], version: object) -> Mapping[str, Any]:
+        """A sensor's state as this version stores it; version 1 (before the followed scaler,
+        the long-window guard and the calibrated band) gains their starting values."""
+        if version == STATE_VERSION:
+            return d
+        if version != 1:
+            raise StateError(f"engine state version {version!r} is neither 1 nor "
+                             f"{STATE_VERSION}")
+        out = dict(d)
+        guard = dict(out["guard"])
+        for key, value in (("long_abs", 0.0), ("long_n", 0), ("recoveries", 0),
+                           ("run_t0", None)):
+            guard.setdefault(key, value)
+        out["guard"] = guard
+        model = None if out["model"] is None else RidgeModel.from_dict(out["model"])
+        out.setdefault("ranges", None if model is None else ranges_for(model).to_dict())
+        out.setdefault("band", [band_start(self._cfg.output.band_coverage), 0, 0])
+        out.setdefault("ref_window", [-1, 0])
+        return out
+
+    def _load_sensor(self, name: str, d: Mapping[str, Any],
+                     version: object = STATE_VERSION) -> None:
+        d = self._upgraded(d, version)
         st = self._state(name)
         st.model = None if d["model"] is None else RidgeModel.from_dict(d["model"])
         if st.model is not None and st.model.spec != st.spec:
@@ -633,13 +655,14 @@ class Engine:
 
     def load_state(self, state: Mapping[str, Any]) -> None:
         """Replace the engine's state with one from :meth:`state_dict`."""
-        if state.get("version") != STATE_VERSION:
-            raise StateError(f"engine state version {state.get('version')!r} is not "
+        version = state.get("version")
+        if version not in (1, STATE_VERSION):
+            raise StateError(f"engine state version {version!r} is neither 1 nor "
                              f"{STATE_VERSION}")
         try:
             self._sensors = {}
             for name, d in state["sensors"].items():
-                self._load_sensor(name, d)
+                self._load_sensor(name, d, version)
             self.counts = Counter({str(k): int(v) for k, v in state["counts"].items()})
         except (KeyError, TypeError, ValueError, AttributeError, OverflowError) as exc:
             raise StateError(f"engine state is malformed: {exc!r}") from exc
@@ -657,14 +680,15 @@ class Engine:
         try:
             if exported.get("format") != "trimtab-sensor-state":
                 raise StateError("not a trimtab sensor-state export (format key)")
-            if exported.get("version") != STATE_VERSION:
-                raise StateError(f"sensor-state version {exported.get('version')!r} is not "
+            version = exported.get("version")
+            if version not in (1, STATE_VERSION):
+                raise StateError(f"sensor-state version {version!r} is neither 1 nor "
                                  f"{STATE_VERSION}")
             sensor = str(exported["sensor"])
             if not self._cfg.sensor_allowed(sensor):
                 raise StateError(f"sensor {sensor!r} is not configured on this daemon")
             self._sensors.pop(sensor, None)
-            self._load_sensor(sensor, exported["state"])
+            self._load_sensor(sensor, exported["state"], version)
         except (KeyError, TypeError, ValueError, AttributeError, OverflowError) as exc:
             raise StateError(f"sensor-state export is malformed: {exc!r}") from exc
         return sensor
