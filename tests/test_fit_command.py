@@ -374,3 +374,23 @@ class TestPriorIsWhatTheOperatorSays:
         assert list(load_model_file(model)[0].prior) == [1.5, 2.5]
         assert main(["fit", str(data), "--prior", "1,2,3", "-o", str(model)]) == 2
         assert "needs 2 finite weights" in capsys.readouterr().err
+
+
+class TestFitParquet:
+    def test_a_parquet_file_fits_as_the_same_csv_does(self, tmp_path: Path) -> None:
+        """NIST Norris as Parquet gives the model the CSV gives, bit for bit."""
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        rows = _norris_rows()
+        csv_path = _write_csv(tmp_path / "norris.csv", rows)
+        pq.write_table(pa.table({"t": [T0 + 3600 * i for i in range(len(rows))],
+                                 "raw": [x for x, _ in rows], "ref": [y for _, y in rows]}),
+                       tmp_path / "norris.parquet")
+        for name in ("norris.csv", "norris.parquet"):
+            assert main(["fit", str(tmp_path / name), "--lambda", "0", "-o",
+                         str(tmp_path / f"{name}.json")]) == 0
+        a, _ = load_model_file(tmp_path / "norris.csv.json")
+        b, _ = load_model_file(tmp_path / "norris.parquet.json")
+        assert a.theta == b.theta and len(rows) > 30
+        assert csv_path.exists()

@@ -263,7 +263,7 @@ def _table(path: Path, layout: CsvLayout) -> tuple[list[str], Rows, str | None]:
     Parquet. Needs pyarrow (the ``parquet`` extra) for Parquet only.
     """
     if path.suffix.lower() == ".parquet":
-        return _parquet(path)
+        return (*parquet_rows(path), None)
     try:
         text = path.read_bytes().decode("utf-8-sig")
     except FileNotFoundError:
@@ -290,7 +290,8 @@ def _table(path: Path, layout: CsvLayout) -> tuple[list[str], Rows, str | None]:
     return header, rows(), delim
 
 
-def _parquet(path: Path) -> tuple[list[str], Rows, str | None]:
+def parquet_rows(path: Path) -> tuple[list[str], Rows]:
+    """The header and numbered rows of a Parquet file, as text cells (see :func:`_table`)."""
     try:
         import pyarrow.parquet as pq
     except ImportError:
@@ -320,7 +321,7 @@ def _parquet(path: Path) -> tuple[list[str], Rows, str | None]:
         for i in range(table.num_rows):
             yield i + 2, [cell(c[i]) for c in columns]  # "line" 1 is the header, as in CSV
 
-    return header, rows(), None
+    return header, rows()
 
 
 def describe_span(result: CsvResult) -> str:

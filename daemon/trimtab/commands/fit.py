@@ -12,6 +12,7 @@ import bisect
 import csv
 import json
 import math
+from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
@@ -19,6 +20,7 @@ from typing import Any
 
 import numpy as np
 
+from trimtab.csvstream import parquet_rows
 from trimtab.errors import DataError
 from trimtab.messages import Reference
 from trimtab.modelfile import save_model_file
@@ -263,54 +265,68 @@ def _number(text: str, where: str) -> float:
 
 def _read_csv(path: Path, spec: TermSpec, ref_col: str, time_col: str,
               u_col: str | None = None) -> _Data:
-    try:
-        # utf-8-sig: a spreadsheet's byte-order mark must not become part of the first column
-        fh = path.open(newline="", encoding="utf-8-sig")
-    except OSError as exc:
-        raise DataError(f"{path}: cannot read ({exc.strerror})") from exc
+    """Collocation data from a CSV file (or a Parquet file, ``.parquet``): one row a reference."""
     rows_x: list[list[float]] = []
     ts: list[float] = []
     ys: list[float] = []
     us: list[float] = []
-    with fh:
-        reader = csv.reader(fh)
-        try:
-            header = [h.strip() for h in next(reader)]
-        except StopIteration:
-            raise DataError(f"{path}:1: empty file; expected a header row") from None
-        except (csv.Error, UnicodeDecodeError) as exc:
-            raise DataError(f"{path}:1: unreadable header ({exc})") from exc
-        col = {}
-        for name in (*spec.inputs, ref_col, time_col, *((u_col,) if u_col else ())):
-            if name not in header:
-                raise DataError(f"{path}:1: no column {name!r} in the header (have {header})")
-            col[name] = header.index(name)
-        try:
-            for row in reader:
-                line = reader.line_num
-                if not row or all(not c.strip() for c in row):
-                    continue
-                if len(row) != len(header):
-                    raise DataError(
-                        f"{path}:{line}: {len(row)} fields, the header has {len(header)}"
-                    )
+    header, rows = _table(path)
+    col = {}
+    for name in (*spec.inputs, ref_col, time_col, *((u_col,) if u_col else ())):
+        if name not in header:
+            raise DataError(f"{path}:1: no column {name!r} in the header (have {header})")
+        col[name] = header.index(name)
+    try:
+        for line, row in rows:
+            if not row or all(not c.strip() for c in row):
+                continue
+            if len(row) != len(header):
+                raise DataError(
+                    f"{path}:{line}: {len(row)} fields, the header has {len(header)}"
+                )
 
-                def at(name: str, line: int = line) -> str:
-                    return f"{path}:{line}: column {col[name] + 1} ({name!r})"
+            def at(name: str, line: int = line) -> str:
+                return f"{path}:{line}: column {col[name] + 1} ({name!r})"
 
-                rows_x.append([_number(row[col[n]], at(n)) for n in spec.inputs])
-                ys.append(_number(row[col[ref_col]], at(ref_col)))
-                ts.append(parse_time(row[col[time_col]], at(time_col)))
-                if u_col:
-                    u = _number(row[col[u_col]], at(u_col))
-                    if not u > 0.0:
-                        raise DataError(f"{at(u_col)}: uncertainty {u:g} must be > 0")
-                    us.append(u)
-        except (csv.Error, UnicodeDecodeError) as exc:
-            raise DataError(f"{path}:{reader.line_num}: unreadable CSV ({exc})") from exc
+            rows_x.append([_number(row[col[n]], at(n)) for n in spec.inputs])
+            ys.append(_number(row[col[ref_col]], at(ref_col)))
+            ts.append(parse_time(row[col[time_col]], at(time_col)))
+            if u_col:
+                u = _number(row[col[u_col]], at(u_col))
+                if not u > 0.0:
+                    raise DataError(f"{at(u_col)}: uncertainty {u:g} must be > 0")
+                us.append(u)
+    except (csv.Error, UnicodeDecodeError) as exc:
+        raise DataError(f"{path}: unreadable CSV ({exc})") from exc
     X = np.array(rows_x, dtype=np.float64).reshape(len(rows_x), len(spec.inputs))
     return _Data(X, np.array(ts, dtype=np.float64), np.array(ys, dtype=np.float64), None,
                  u=np.array(us, dtype=np.float64) if u_col else None)
+
+
+def _table(path: Path) -> tuple[list[str], Iterator[tuple[int, list[str]]]]:
+    """The header and numbered rows of a comma-separated file, or of a Parquet file."""
+    if path.suffix.lower() == ".parquet":
+        return parquet_rows(path)
+    try:
+        # utf-8-sig: a spreadsheet's byte-order mark must not become part of the first column
+        text = path.read_text(encoding="utf-8-sig")
+    except OSError as exc:
+        raise DataError(f"{path}: cannot read ({exc.strerror})") from exc
+    except UnicodeDecodeError as exc:
+        raise DataError(f"{path}:1: unreadable header ({exc})") from exc
+    reader = csv.reader(text.splitlines(keepends=True))
+    try:
+        header = [h.strip() for h in next(reader)]
+    except StopIteration:
+        raise DataError(f"{path}:1: empty file; expected a header row") from None
+    except csv.Error as exc:
+        raise DataError(f"{path}:1: unreadable header ({exc})") from exc
+
+    def numbered() -> Iterator[tuple[int, list[str]]]:
+        for row in reader:
+            yield reader.line_num, row
+
+    return header, numbered()
 
 
 def _read_stream(path: Path, spec: TermSpec, sensor: str | None, tolerance: float) -> _Data:
