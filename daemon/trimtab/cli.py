@@ -10,15 +10,13 @@ from __future__ import annotations
 import argparse
 import importlib
 import importlib.util
-import os
 import sys
 from collections.abc import Sequence
 
-from trimtab.errors import ConfigError, StateFault, TrimtabError
 from trimtab.logs import configure_logging
+from trimtab.options import EXIT_STATE, run_command
 
-EXIT_STATE = 3
-"""The state directory cannot be used; systemd restarts the unit after a delay (see the unit)."""
+__all__ = ["EXIT_STATE", "build_parser", "main"]
 
 # sub-command name -> module under trimtab.commands providing add_arguments(p) and run(args) -> int
 COMMANDS: dict[str, tuple[str, str]] = {
@@ -65,38 +63,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = parser.parse_args(argv)
     # Tool commands log warnings only, to stderr; `run` reconfigures from its config.
     configure_logging("warning")
-    try:
-        code: int = args._run(args)
-    except ConfigError as exc:
-        for line in exc.errors:
-            print(f"trimtab {args.command}: {line}", file=sys.stderr)
-        return 2
-    except StateFault as exc:
-        print(f"trimtab {args.command}: {exc}", file=sys.stderr)
-        return EXIT_STATE
-    except TrimtabError as exc:
-        print(f"trimtab {args.command}: {exc}", file=sys.stderr)
-        return 2
-    except KeyboardInterrupt:
-        print(f"trimtab {args.command}: interrupted", file=sys.stderr)
-        return 130
-    except BrokenPipeError:
-        # the reader of our output went away (`| head`): stop quietly, as shell tools do
-        devnull = os.open(os.devnull, os.O_WRONLY)
-        os.dup2(devnull, sys.stdout.fileno())
-        return 141
-    except OSError as exc:
-        # a file the command named could not be opened or written: one line, the file named
-        where = exc.filename if exc.filename is not None else "a file"
-        print(f"trimtab {args.command}: {where}: {exc.strerror or exc}", file=sys.stderr)
-        return 2
-    except Exception as exc:  # the last line of defence: no traceback reaches a user
-        if os.environ.get("TRIMTAB_TRACEBACK"):
-            raise
-        print(f"trimtab {args.command}: internal error: {type(exc).__name__}: {exc} "
-              "(a bug; TRIMTAB_TRACEBACK=1 shows where)", file=sys.stderr)
-        return 1
-    return code
+    return run_command("trimtab", args)
 
 
 if __name__ == "__main__":

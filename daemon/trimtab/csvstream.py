@@ -134,7 +134,8 @@ def _sniff(header: str, path: Path) -> str:
     return best
 
 
-def _number(text: str, decimal_comma: bool, where: str) -> float:
+def parse_number(text: str, where: str, decimal_comma: bool = False) -> float:
+    """A finite number from a cell; DataError names ``where`` (file, line and column)."""
     s = text.strip()
     if decimal_comma:
         s = s.replace(".", "").replace(",", ".") if "," in s else s
@@ -237,12 +238,12 @@ def read_csv_events(path: Path, layout: CsvLayout) -> CsvResult:
             elif blank := [n for n, v in cells.items() if not v.strip()]:
                 skipped[f"no {layout.inputs[blank[0]]!r} value"] += 1
             else:
-                inputs = {n: _number(v, layout.decimal_comma, at(layout.inputs[n]))
+                inputs = {n: parse_number(v, at(layout.inputs[n]), layout.decimal_comma)
                           for n, v in cells.items()}
                 events.append((t, 0, Reading(t=t, sensor=sensor, inputs=inputs)))
             if layout.reference is not None and row[col[layout.reference]].strip():
-                value = _number(row[col[layout.reference]], layout.decimal_comma,
-                                at(layout.reference))
+                value = parse_number(row[col[layout.reference]], at(layout.reference),
+                                     layout.decimal_comma)
                 events.append((t, 1, Reference(t=t, sensor=sensor, value=value,
                                                window=layout.window)))
     except csv.Error as exc:

@@ -5,12 +5,10 @@ from __future__ import annotations
 import argparse
 import importlib
 import importlib.util
-import os
 import sys
 from collections.abc import Sequence
 
-from trimtab.errors import ConfigError, TrimtabError
-from trimtab.options import deprecated
+from trimtab.options import deprecated, run_command
 
 COMMANDS: dict[str, tuple[str, str]] = {
     "make": ("make", "generate a seeded stream from a scenario"),
@@ -67,34 +65,7 @@ def old_spellings(argv: Sequence[str]) -> list[str]:
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``trimtab-sim`` console script."""
     args = build_parser().parse_args(old_spellings(sys.argv[1:] if argv is None else argv))
-    try:
-        code: int = args._run(args)
-    except ConfigError as exc:
-        for line in exc.errors:
-            print(f"trimtab-sim {args.command}: {line}", file=sys.stderr)
-        return 2
-    except TrimtabError as exc:
-        print(f"trimtab-sim {args.command}: {exc}", file=sys.stderr)
-        return 2
-    except KeyboardInterrupt:
-        return 130
-    except BrokenPipeError:
-        # the reader of our output went away (`| head`): stop quietly, as shell tools do
-        devnull = os.open(os.devnull, os.O_WRONLY)
-        os.dup2(devnull, sys.stdout.fileno())
-        return 141
-    except OSError as exc:
-        # a file the command named could not be opened or written: one line, the file named
-        where = exc.filename if exc.filename is not None else "a file"
-        print(f"trimtab-sim {args.command}: {where}: {exc.strerror or exc}", file=sys.stderr)
-        return 2
-    except Exception as exc:  # the last line of defence: no traceback reaches a user
-        if os.environ.get("TRIMTAB_TRACEBACK"):
-            raise
-        print(f"trimtab-sim {args.command}: internal error: {type(exc).__name__}: {exc} "
-              "(a bug; TRIMTAB_TRACEBACK=1 shows where)", file=sys.stderr)
-        return 1
-    return code
+    return run_command("trimtab-sim", args)
 
 
 if __name__ == "__main__":

@@ -20,7 +20,7 @@ from typing import Any
 
 import numpy as np
 
-from trimtab.csvstream import parquet_rows
+from trimtab.csvstream import parquet_rows, parse_number
 from trimtab.errors import DataError
 from trimtab.messages import Reference
 from trimtab.modelfile import save_model_file
@@ -253,16 +253,6 @@ def _text_time(text: str, where: str) -> float:
     return stamp.timestamp()
 
 
-def _number(text: str, where: str) -> float:
-    try:
-        out = float(text)
-    except ValueError:
-        raise DataError(f"{where}: {text.strip()!r} is not a number") from None
-    if not math.isfinite(out):
-        raise DataError(f"{where}: {text.strip()!r} is not a finite number")
-    return out
-
-
 def _read_csv(path: Path, spec: TermSpec, ref_col: str, time_col: str,
               u_col: str | None = None) -> _Data:
     """Collocation data from a CSV file (or a Parquet file, ``.parquet``): one row a reference."""
@@ -288,11 +278,11 @@ def _read_csv(path: Path, spec: TermSpec, ref_col: str, time_col: str,
             def at(name: str, line: int = line) -> str:
                 return f"{path}:{line}: column {col[name] + 1} ({name!r})"
 
-            rows_x.append([_number(row[col[n]], at(n)) for n in spec.inputs])
-            ys.append(_number(row[col[ref_col]], at(ref_col)))
+            rows_x.append([parse_number(row[col[n]], at(n)) for n in spec.inputs])
+            ys.append(parse_number(row[col[ref_col]], at(ref_col)))
             ts.append(parse_time(row[col[time_col]], at(time_col)))
             if u_col:
-                u = _number(row[col[u_col]], at(u_col))
+                u = parse_number(row[col[u_col]], at(u_col))
                 if not u > 0.0:
                     raise DataError(f"{at(u_col)}: uncertainty {u:g} must be > 0")
                 us.append(u)
