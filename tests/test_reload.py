@@ -5,10 +5,12 @@ from __future__ import annotations
 import json
 import signal
 import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
 from trimtab.config import apply_reload, load_config, parse_config, reloads_live
+from trimtab.messages import Reading, Reference
 from trimtab.wiring import make_engine, status_topic
 from trimtab_sim.broker import PrivateBroker
 from trimtab_sim.mqttio import play
@@ -62,46 +64,62 @@ class TestApplyReload:
         assert applied.learning.alpha == 0.2 and applied.broker.port == 1883
 
 
+class _Run:
+    """A daemon on the private broker with its config file, and a stream cut in two halves."""
+
+    def __init__(self, tmp_path: Path, broker: PrivateBroker,
+                 text: Callable[[str], str] | None = None) -> None:
+        self.cfg_path = write_config(tmp_path / "d", broker.port)
+        if text is not None:
+            self.cfg_path.write_text(text(self.cfg_path.read_text()))
+        self.cfg = load_config(self.cfg_path)
+        events = synthetic_stream(240)
+        self.before, self.after = events[: len(events) // 2], events[len(events) // 2:]
+        self.port = broker.port
+        self.watcher = Watcher(broker.port, status_topic(self.cfg))
+        self.daemon = Daemon(self.cfg_path, tmp_path / "daemon.log")
+
+    def play(self, events: list[Reading | Reference]) -> None:
+        play(events, self.cfg, host="127.0.0.1", port=self.port)
+
+    def reload(self, text: Callable[[str], str]) -> None:
+        """Rewrite the config file and send SIGHUP."""
+        self.cfg_path.write_text(text(self.cfg_path.read_text()))
+        self.daemon.signal(signal.SIGHUP)
+
+
 class TestReloadOverTheBroker:
     def test_reload_adds_a_sensor_and_recovers_exactly_after_kill9(
             self, tmp_path: Path, broker: PrivateBroker) -> None:
         """A reload adding a sensor, a tolerance and α is served at once, logged truthfully, and
         kill -9 afterwards recovers what an uninterrupted run with the same reload holds."""
-        cfg_path = write_config(tmp_path / "d", broker.port)
         # no periodic checkpoint during the test: only the reload's own one separates the
         # settings, so a reload that skipped it would recover under the wrong ones
-        first = (cfg_path.read_text().replace('ids = ["s1", "s2"]', 'ids = ["s1"]')
-                 .replace("checkpoint_every = 0.5", "checkpoint_every = 3600.0"))
-        cfg_path.write_text(first)
-        cfg1 = load_config(cfg_path)
-        events = synthetic_stream(240)
-        half = len(events) // 2
-        before, after = events[:half], events[half:]
-        watcher = Watcher(broker.port, status_topic(cfg1))
-        daemon = Daemon(cfg_path, tmp_path / "daemon.log")
+        run = _Run(tmp_path, broker, lambda t: t.replace('ids = ["s1", "s2"]', 'ids = ["s1"]')
+                   .replace("checkpoint_every = 0.5", "checkpoint_every = 3600.0"))
+        cfg1, before, after, daemon, watcher = run.cfg, run.before, run.after, run.daemon, \
+            run.watcher
         daemon.start()
         try:
             assert watcher.wait_online(), daemon.log()
-            play(before, cfg1, host="127.0.0.1", port=broker.port)
+            run.play(before)
             s1_before = [e for e in before if e.sensor == "s1"]
             assert watcher.wait_for(caught_up(s1_before)), daemon.log()
-            second = (first.replace('ids = ["s1"]', 'ids = ["s1", "s2"]')
-                      .replace("tolerance = 30.0", "tolerance = 60.0")
-                      .replace("alpha = 0.1", "alpha = 0.2")
-                      .replace("keepalive = 10", "keepalive = 20"))
-            cfg_path.write_text(second)
-            daemon.signal(signal.SIGHUP)
+            run.reload(lambda t: t.replace('ids = ["s1"]', 'ids = ["s1", "s2"]')
+                       .replace("tolerance = 30.0", "tolerance = 60.0")
+                       .replace("alpha = 0.1", "alpha = 0.2")
+                       .replace("keepalive = 10", "keepalive = 20"))
             reloaded = _wait_log(daemon, "config_reloaded")
             assert reloaded["applied"] == ["learning.alpha", "pairing.tolerance", "sensors.ids"]
             assert _wait_log(daemon, "config_reload_needs_restart")["paths"] == [
                 "broker.keepalive"]
             assert _wait_log(daemon, "sensors_added")["sensors"] == ["s2"]
-            play(after, cfg1, host="127.0.0.1", port=broker.port)
+            run.play(after)
             assert watcher.wait_for(caught_up(after)), daemon.log()
         finally:
             daemon.kill9()
             watcher.close()
-        cfg2 = load_config(cfg_path)
+        cfg2 = load_config(run.cfg_path)
         applied, _, _ = apply_reload(cfg1, cfg2)
         expected = make_engine(cfg1)
         for e in before:
@@ -118,24 +136,18 @@ class TestReloadOverTheBroker:
             self, tmp_path: Path, broker: PrivateBroker) -> None:
         """Removing s2 logs it with its update count; its later messages are refused and
         counted; its learnt state is kept (not served, not lost)."""
-        cfg_path = write_config(tmp_path / "d", broker.port)
-        cfg1 = load_config(cfg_path)
-        events = synthetic_stream(240)
-        half = len(events) // 2
-        before, after = events[:half], events[half:]
-        watcher = Watcher(broker.port, status_topic(cfg1))
-        daemon = Daemon(cfg_path, tmp_path / "daemon.log")
+        run = _Run(tmp_path, broker)
+        cfg1, before, after, daemon, watcher = run.cfg, run.before, run.after, run.daemon, \
+            run.watcher
         daemon.start()
         try:
             assert watcher.wait_online(), daemon.log()
-            play(before, cfg1, host="127.0.0.1", port=broker.port)
+            run.play(before)
             assert watcher.wait_for(caught_up(before)), daemon.log()
-            cfg_path.write_text(cfg_path.read_text().replace('ids = ["s1", "s2"]',
-                                                             'ids = ["s1"]'))
-            daemon.signal(signal.SIGHUP)
+            run.reload(lambda t: t.replace('ids = ["s1", "s2"]', 'ids = ["s1"]'))
             removed = _wait_log(daemon, "sensors_removed")
             assert removed["sensors"] == ["s2"] and removed["state_kept"] is True
-            play(after, cfg1, host="127.0.0.1", port=broker.port)
+            run.play(after)
             s1_after = [e for e in after if e.sensor == "s1"]
             assert watcher.wait_for(caught_up(s1_after)), daemon.log()
             refused = sum(1 for e in after if e.sensor == "s2")
@@ -151,6 +163,6 @@ class TestReloadOverTheBroker:
             expected.process(e)
         kept = expected.model("s2")
         assert kept is not None and removed["updates"] == {"s2": kept.updates}
-        recovered = recovered_engine(load_config(cfg_path))
+        recovered = recovered_engine(load_config(run.cfg_path))
         back = recovered.model("s2")
         assert back is not None and back.theta == kept.theta

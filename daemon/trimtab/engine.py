@@ -69,6 +69,14 @@ def band_step(k: _K, covered: Any, coverage: float, gain: float) -> _K:
     return np.maximum(0.0, k + gain * (miss - (1.0 - coverage)))  # type: ignore[return-value]
 
 
+def prior_mode(settings: SensorSettings) -> str | tuple[float, ...]:
+    """The prior a sensor's settings ask for: the configured one, or the default for unset
+    (``"initial"`` with an initial_state, else ``"factory"``)."""
+    if settings.prior is not None:
+        return settings.prior
+    return "initial" if settings.initial_state is not None else "factory"
+
+
 def configured_prior(settings: SensorSettings, spec: TermSpec, scaler: Scaler,
                      start: Sequence[float] | None = None) -> list[float] | None:
     """The prior the online penalty pulls toward, in standardised units; None: the factory.
@@ -79,9 +87,7 @@ def configured_prior(settings: SensorSettings, spec: TermSpec, scaler: Scaler,
     engine creates starts at the factory calibration), a list is taken as given. Unset:
     ``"initial"`` when there is an initial_state, else the factory calibration.
     """
-    p = settings.prior
-    if p is None:
-        p = "initial" if settings.initial_state is not None else "factory"
+    p = prior_mode(settings)
     if p == "initial":
         return None if start is None else [float(v) for v in start]
     if p == "factory":
@@ -279,9 +285,8 @@ class Engine:
             if settings.initial_state is not None:
                 model = self._initial[str(settings.initial_state)]
                 prior = configured_prior(settings, model.spec, model.scaler, model.theta)
-                self._start(st, self._with_learning(
-                    model.with_prior(factory_prior(model.spec, model.scaler)
-                                     if prior is None else prior)))
+                assert prior is not None  # "initial" has the file's weights to start from
+                self._start(st, self._with_learning(model.with_prior(prior)))
                 st.warm = True
             self._sensors[sensor] = st
         return st
@@ -383,26 +388,29 @@ class Engine:
         if not fresh and r.t == st.last_reading_t:
             self.counts["reading_duplicate"] += 1
             return None
+        row: list[float] | None = None
         if fresh:
             st.last_reading_t = r.t
             st.buffer.add(r.t, [float(v) for v in values])
             self._ensure_model(st, r)
             if st.ranges is not None and st.model is not None and \
                     self._cfg.learning.scaler == "follow":
-                st.ranges.observe(st.spec.row(inputs, r.t, st.model.origin), r.t,
-                                  self._cfg.learning.scaler_span)
+                # the term values serve the range and, below, the correction: computed once
+                row = st.spec.row(inputs, r.t, st.model.origin)
+                st.ranges.observe(row, r.t, self._cfg.learning.scaler_span)
             self.counts["reading_accepted"] += 1
         else:
             self.counts["reading_out_of_order"] += 1
-        return self._correct(st, r, raw)
+        return self._correct(st, r, raw, row)
 
-    def _correct(self, st: SensorState, r: Reading, raw: float) -> Corrected:
+    def _correct(self, st: SensorState, r: Reading, raw: float,
+                 row: list[float] | None = None) -> Corrected:
         oc = self._cfg.output
         model = st.model
         if model is None:
             return Corrected(r.t, r.sensor, raw, raw, 0.0, ("warmup",), 0)
         flags: list[str] = []
-        phi, zmax = model.phi(r.inputs, r.t)
+        phi, zmax = (model.phi(r.inputs, r.t) if row is None else model.phi_of_row(row, r.t))
         if st.warm or st.guard.applied >= self._cfg.learning.warmup:
             value = model.predict_phi(phi)
         else:
@@ -475,8 +483,7 @@ class Engine:
         model = st.model
         assert model is not None
         lc = self._cfg.learning
-        if lc.scaler == "follow" and st.ranges is not None:
-            self._move_scaler(st, model, st.ranges.target(model.scaler, lc.scaler_width))
+        self._move_scaler(st, model, self.next_scaler(st, model.scaler))
         inputs = dict(zip(st.spec.inputs, values, strict=True))
         phi, _ = model.phi(inputs, t_pair)
         residual = model.predict_phi(phi) - y
@@ -511,6 +518,14 @@ class Engine:
             if verdict == "shift":
                 status = "level_shift"
         return status, residual
+
+    def next_scaler(self, st: SensorState, current: Scaler) -> Scaler:
+        """The scaler a reference moves a sensor's model to from ``current`` (itself when the
+        scaler is fixed). The tuner's recorder asks the same, so both move alike."""
+        lc = self._cfg.learning
+        if lc.scaler != "follow" or st.ranges is None:
+            return current
+        return st.ranges.target(current, lc.scaler_width)
 
     def _move_scaler(self, st: SensorState, model: RidgeModel, target: Scaler) -> None:
         """Move the model (and its last good snapshot) to ``target``, keeping every ŷ."""

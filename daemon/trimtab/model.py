@@ -271,7 +271,10 @@ class RidgeModel:
         A non-finite input raises ModelError; so does a term that overflows to ±inf unless
         ``clip`` is set, in which case it is clipped like any other far-out value.
         """
-        row = self._spec.row(inputs, t, self._origin)
+        return self.phi_of_row(self._spec.row(inputs, t, self._origin), t)
+
+    def phi_of_row(self, row: list[float], t: float) -> tuple[list[float], float]:
+        """:meth:`phi` from the term values ``spec.row(inputs, t, origin)`` already computed."""
         z = [(v - c) / s for v, c, s in zip(row, self._centre, self._scale, strict=True)]
         total = sum(z)
         if total - total == 0.0:

@@ -36,6 +36,7 @@ from pathlib import Path
 from typing import Any, Literal
 
 import numpy as np
+from numpy.typing import NDArray
 
 from trimtab.config import Config
 from trimtab.engine import elapsed_scale_days
@@ -156,15 +157,24 @@ class Tuner:
     def _part(self, t: float) -> int:
         return 0 if self.split_t is None or t < self.split_t else 1
 
-    def _fold(self, t: float) -> int:
-        """Which of the tune part's consecutive time blocks t falls in; -1 in the test part."""
+    def _folds(self, t: NDArray[np.float64]) -> NDArray[np.int64]:
+        """Which of the tune part's consecutive time blocks each t falls in; -1 in the test
+        part (one computation for a sensor's readings and, one at a time, its references)."""
         t0 = self.trace.t_first
         end = self.split_t if self.split_t is not None else self.trace.t_last
-        if t0 is None or end is None or self._part(t) == 1:
-            return -1
-        if end <= t0:
-            return 0
-        return min(self.folds - 1, max(0, int(self.folds * (t - t0) / (end - t0))))
+        if t0 is None or end is None:
+            return np.full(len(t), -1, dtype=np.int64)
+        block = (np.zeros(len(t)) if end <= t0
+                 else np.floor(self.folds * (t - t0) / (end - t0)))
+        fold = np.clip(block, 0, self.folds - 1).astype(np.int64)
+        if self.split_t is not None:
+            fold[t >= self.split_t] = -1
+        out: NDArray[np.int64] = fold
+        return out
+
+    def _fold(self, t: float) -> int:
+        """:meth:`_folds` of one time."""
+        return int(self._folds(np.array([t]))[0])
 
     def _groups(self, tr: SensorTrace, base: RidgeModel) -> dict[Scaler, list[int]]:
         groups: dict[Scaler, list[int]] = {}
@@ -231,7 +241,7 @@ class Tuner:
         raw = X[:, 0]
         part = (np.zeros(len(t), dtype=np.int8) if self.split_t is None
                 else (t >= self.split_t).astype(np.int8))
-        fold = np.array([self._fold(x) for x in t.tolist()], dtype=np.int64)
+        fold = self._folds(t)
         ready = tr.unready
         follow = ve.ref_scalers is not None
         phi = None if follow else phi_rows(ve.model, X[ready:], t[ready:])

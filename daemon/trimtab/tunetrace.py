@@ -127,7 +127,8 @@ class _Recorder(Engine):
             tr.state = st
         return tr
 
-    def _correct(self, st: SensorState, r: Reading, raw: float) -> Corrected:
+    def _correct(self, st: SensorState, r: Reading, raw: float,
+                 row: list[float] | None = None) -> Corrected:
         tr = self._trace(st, r.sensor)
         if st.model is None:
             if tr.unready != len(tr.out_t):
@@ -143,14 +144,11 @@ class _Recorder(Engine):
                ref_t: float) -> tuple[str, float | None]:
         tr = self._find(st)
         assert st.model is not None
-        scaler = st.model.scaler if tr.scaler is None else tr.scaler
-        lc = self._cfg.learning
-        if lc.scaler == "follow" and st.ranges is not None:
-            # the engine's own move (Engine._learn), on the scaler alone: θ is per candidate
-            moved = st.ranges.target(scaler, lc.scaler_width)
-            if moved != scaler:
-                self.counts["scaler_moved"] += 1
-            scaler = moved
+        current = st.model.scaler if tr.scaler is None else tr.scaler
+        # the engine's own move (Engine._learn), on the scaler alone: θ is per candidate
+        scaler = self.next_scaler(st, current)
+        if scaler != current:
+            self.counts["scaler_moved"] += 1
         tr.scaler = scaler
         tr.refs.append(RefRecord(len(tr.out_t), tuple(float(v) for v in values), float(t_pair),
                                  float(y), float(ref_t), scaler))

@@ -14,7 +14,7 @@ import json
 from typing import Any
 
 from trimtab.config import RELOADABLE, Config, file_problems, load_config
-from trimtab.engine import configured_prior, configured_scaler, spec_of
+from trimtab.engine import configured_prior, configured_scaler, prior_mode, spec_of
 from trimtab.errors import ConfigError
 from trimtab.figures import derived_figures
 from trimtab.model import RidgeModel
@@ -120,8 +120,7 @@ def model_figures(cfg: Config, models: dict[str, RidgeModel]) -> dict[str, Any]:
                                     f"the first {s.scaler_readings} readings")
         if scaler is not None:
             entry["centre"], entry["scale"] = list(scaler.centre), list(scaler.scale)
-        mode = s.prior if s.prior is not None else (
-            "initial" if s.initial_state is not None else "factory")
+        mode = prior_mode(s)
         prior: list[float] | None
         if isinstance(mode, tuple):
             entry["prior_from"], prior = "configured weights", list(mode)
