@@ -60,14 +60,21 @@ class FakeClient:
         return PublishResult(self._mid)
 
 
+def _outbox(window: int, values: int, client: FakeClient | None = None
+            ) -> tuple[Outbox, FakeClient]:
+    """An outbox of ``window`` attached to a stand-in client, holding values b"0", b"1", …."""
+    client = FakeClient() if client is None else client
+    box = Outbox(window)
+    box.attach(client)
+    for i in range(values):
+        box.add("t", b"%d" % i)
+    return box, client
+
+
 class TestOutbox:
     def test_never_more_than_the_window_in_flight(self) -> None:
         """With a window of 3, a fourth value waits until a PUBACK frees a place."""
-        client = FakeClient()
-        box = Outbox(3)
-        box.attach(client)
-        for i in range(5):
-            box.add("t", b"%d" % i)
+        box, client = _outbox(3, 5)
         assert box.pump() == 3
         assert [p for _, _, p in client.sent] == [b"0", b"1", b"2"]
         box.on_published(2, None)
@@ -77,11 +84,7 @@ class TestOutbox:
 
     def test_done_counts_only_an_unbroken_run_from_the_start(self) -> None:
         """PUBACKs out of order: done advances only over values all acknowledged."""
-        client = FakeClient()
-        box = Outbox(10)
-        box.attach(client)
-        for i in range(4):
-            box.add("t", b"%d" % i)
+        box, _ = _outbox(10, 4)
         box.pump()
         box.on_published(2, None)
         box.on_published(3, None)

@@ -99,8 +99,10 @@ class RangeTracker:
     def observe(self, row: Sequence[float], t: float, span: float) -> None:
         """Fold one fresh reading's term values (the elapsed term is ignored) into the range."""
         last = self.last_t
+        if last is not None and not t > last:
+            return  # not later than the last: the clock never goes back
         self.last_t = t
-        if last is None or not t > last:
+        if last is None:
             return
         beta = -math.expm1(-(t - last) / span)
         mean, var, fixed = self.mean, self.var, self._fixed
