@@ -114,6 +114,8 @@ class TestReloadOverTheBroker:
             assert _wait_log(daemon, "config_reload_needs_restart")["paths"] == [
                 "broker.keepalive"]
             assert _wait_log(daemon, "sensors_added")["sensors"] == ["s2"]
+            assert watcher.wait_for(lambda w: w.stats is not None
+                                    and w.stats.get("reloads") == {"applied": 1}), daemon.log()
             run.play(after)
             assert watcher.wait_for(caught_up(after)), daemon.log()
         finally:

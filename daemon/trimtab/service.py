@@ -186,6 +186,8 @@ class Service:
         self.storage_pauses = 0
         self.recovery_differs = 0
         self._engine_logged: dict[str, int] = {}
+        self.reloads: Counter[str] = Counter()
+        """SIGHUP outcomes: applied, refused (a bad config), deferred (no checkpoint)."""
         self._stop = threading.Event()
         self._reload = threading.Event()
         self._dirty = False
@@ -540,6 +542,7 @@ class Service:
         stats["storage"] = {"pauses": self.storage_pauses, "paused": self._stalled is not None}
         stats["recovery_output_differs"] = self.recovery_differs
         stats["journal_lost"] = dict(self.journal_lost)
+        stats["reloads"] = dict(self.reloads)
         payload = json.dumps(stats, separators=(",", ":"), allow_nan=False).encode()
         self.transport.publish(status_topic(self.cfg) + "/stats", payload, qos=1, retain=True)
 
@@ -558,6 +561,7 @@ class Service:
         try:
             return self._reload_from(self._loader(self.config_path))
         except ConfigError as exc:
+            self.reloads["refused"] += 1
             log.error("config_reload_failed", errors=exc.errors)
             return True
         finally:
@@ -575,7 +579,9 @@ class Service:
         self.engine.reconfigure(applied)
         if not self.checkpoint():
             self.engine.rewind(old, saved)
-            log.warning("config_reload_deferred", reason="checkpoint_not_written")
+            self.reloads["deferred"] += 1
+            log.warning("config_reload_deferred", reason="checkpoint_not_written",
+                        deferred=self.reloads["deferred"])
             return False
         self.cfg = applied
         added = sorted(set(applied.sensors.ids) - set(old.sensors.ids))
@@ -588,6 +594,7 @@ class Service:
             log.warning("sensors_removed", sensors=removed, state_kept=True,
                         updates={s: stats[s]["updates"] for s in removed})
         configure_logging(self.cfg.logging.level, self.cfg.logging.format)
+        self.reloads["applied"] += 1
         log.info("config_reloaded", path=str(self.config_path), applied=list(live))
         return True
 
