@@ -22,12 +22,12 @@ import numpy as np
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion
 
-from trimtab.config import Config, load_config
-from trimtab.engine import Engine
+from trimtab.config.tree import Config, load_config
+from trimtab.engine.engine import Engine
+from trimtab.engine.wiring import make_engine
 from trimtab.messages import Reading, Reference
-from trimtab.records import record_to_event
-from trimtab.statestore import StateStore
-from trimtab.wiring import make_engine
+from trimtab.store.records import record_to_event
+from trimtab.store.statestore import StateStore
 
 BIN = Path(sys.executable).parent
 PROTOCOL = "5"

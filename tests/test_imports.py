@@ -83,3 +83,60 @@ def test_the_check_finds_a_circle() -> None:
     """The circle finder itself reports a loop it is given."""
     assert _cycle({"a": {"b"}, "b": {"c"}, "c": {"a"}}) == ["a", "b", "c", "a"]
     assert _cycle({"a": {"b"}, "b": set()}) is None
+
+
+LAYERS = ("base", "model", "wire", "store", "config", "engine", "tune", "service", "commands",
+          "cli")
+"""The daemon's floors, lowest first. A module imports only from its own floor or below; tune
+and service stand side by side and import neither each other. ``base`` is the package's
+top-level vocabulary (errors, messages, logs)."""
+SIDE_BY_SIDE = {frozenset({"tune", "service"})}
+
+
+def _floor(module: str) -> str:
+    parts = module.split(".")
+    if len(parts) == 1:
+        return "base"
+    if parts[1] in LAYERS:
+        return parts[1]
+    return "cli" if parts[1] in {"cli", "__main__"} else "base"
+
+
+def _upward(graph: dict[str, set[str]]) -> list[str]:
+    bad = []
+    for m, deps in graph.items():
+        if not m.startswith("trimtab.") and m != "trimtab":
+            continue
+        for d in deps:
+            if d.startswith("trimtab_sim") or d == "trimtab":
+                continue
+            a, b = _floor(m), _floor(d)
+            if (frozenset({a, b}) in SIDE_BY_SIDE
+                    or LAYERS.index(b) > LAYERS.index(a)):
+                bad.append(f"{m} ({a}) -> {d} ({b})")
+    return sorted(bad)
+
+
+def test_imports_only_go_down_the_floors() -> None:
+    """No module of a lower floor (model, wire, store, config, engine, …) imports a higher one."""
+    assert _upward(_graph()) == []
+
+
+def test_every_daemon_module_sits_on_a_floor() -> None:
+    """Each module lives in a sub-package named in LAYERS, or is one of the base modules."""
+    base = {"trimtab", "trimtab.errors", "trimtab.messages", "trimtab.logs", "trimtab.cli",
+            "trimtab.__main__"}
+    loose = sorted(m for m in _graph() if m.startswith("trimtab") and not m.startswith(
+        "trimtab_sim") and m not in base and m.split(".")[1] not in LAYERS)
+    assert loose == []
+
+
+def test_the_floor_check_finds_an_upward_import() -> None:
+    """The floor check reports a model module importing the engine, and tune importing service."""
+    graph = {"trimtab.model.online": {"trimtab.engine.engine"},
+             "trimtab.tune.tuner": {"trimtab.service.daemon"},
+             "trimtab.engine.engine": {"trimtab.model.online"}}
+    assert _upward(graph) == [
+        "trimtab.model.online (model) -> trimtab.engine.engine (engine)",
+        "trimtab.tune.tuner (tune) -> trimtab.service.daemon (service)",
+    ]

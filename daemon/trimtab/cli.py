@@ -13,8 +13,8 @@ import importlib.util
 import sys
 from collections.abc import Sequence
 
+from trimtab.commands.options import EXIT_STATE, run_command
 from trimtab.logs import configure_logging
-from trimtab.options import EXIT_STATE, run_command
 
 __all__ = ["EXIT_STATE", "build_parser", "main"]
 

@@ -1,13 +1,13 @@
 """The engine alone, in this process: trimtab's model and engine beside river's linear model.
 
-Per sample, trimtab's :class:`~trimtab.model.RidgeModel` takes a reading's inputs (a dict)
+Per sample, trimtab's :class:`~trimtab.model.online.RidgeModel` takes a reading's inputs (a dict)
 and builds its own terms (products, elapsed time), standardises and clips them; river's
 ``LinearRegression`` is handed the same terms already built and standardised, as a dict. So
 the comparison leaves river the lighter job. Both run the same samples in the same process,
 interleaved, and each figure is the best of a few repeats (the least disturbed by the other
 work on a shared machine).
 
-The engine rows time :class:`~trimtab.engine.Engine` as the daemon drives it: a reading
+The engine rows time :class:`~trimtab.engine.engine.Engine` as the daemon drives it: a reading
 through pairing buffer, model and flags to a corrected value; a reference through pairing,
 gate, update and guard.
 """
@@ -23,11 +23,11 @@ from typing import Any
 
 import numpy as np
 
-from trimtab.config import Config
-from trimtab.engine import Engine
+from trimtab.config.tree import Config
+from trimtab.engine.engine import Engine
 from trimtab.messages import Reading, Reference
-from trimtab.model import RidgeModel
-from trimtab.terms import Scaler, TermSpec
+from trimtab.model.online import RidgeModel
+from trimtab.model.terms import Scaler, TermSpec
 
 REPEATS = 3
 

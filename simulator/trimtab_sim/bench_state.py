@@ -24,11 +24,11 @@ import tracemalloc
 from pathlib import Path
 from typing import Any
 
-from trimtab.config import Config, load_config
-from trimtab.engine import STATE_VERSION, Engine
+from trimtab.config.tree import Config, load_config
+from trimtab.engine.engine import STATE_VERSION, Engine
+from trimtab.engine.pairing import ReadingBuffer
 from trimtab.messages import Reading, Reference
-from trimtab.pairing import ReadingBuffer
-from trimtab.statestore import StateStore
+from trimtab.store.statestore import StateStore
 from trimtab_sim.bench_setup import STEP, T0, _values, daemon_toml
 
 FEED_READINGS = 720

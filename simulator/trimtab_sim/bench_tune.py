@@ -26,10 +26,10 @@ import tomllib
 from pathlib import Path
 from typing import Any
 
-from trimtab.config import Config, parse_config
-from trimtab.tunegrid import build_candidates, grid_settings
-from trimtab.tuner import Tuner
-from trimtab.tunetrace import record
+from trimtab.config.tree import Config, parse_config
+from trimtab.tune.grid import build_candidates, grid_settings
+from trimtab.tune.trace import record
+from trimtab.tune.tuner import Tuner
 from trimtab_sim.generate import write_stream
 from trimtab_sim.scenario import parse_scenario
 

@@ -8,7 +8,7 @@ import importlib.util
 import sys
 from collections.abc import Sequence
 
-from trimtab.options import deprecated, run_command
+from trimtab.commands.options import deprecated, run_command
 
 COMMANDS: dict[str, tuple[str, str]] = {
     "make": ("make", "generate a seeded stream from a scenario"),

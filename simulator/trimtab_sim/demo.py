@@ -18,12 +18,12 @@ from pathlib import Path
 from typing import Any, Protocol
 
 from trimtab.commands.check import to_toml
-from trimtab.config import Config, load_config
+from trimtab.config.tree import Config, load_config
+from trimtab.engine.wiring import make_engine
 from trimtab.errors import TrimtabError
 from trimtab.messages import Reading
-from trimtab.streamfile import read_events, write_corrected, write_events
-from trimtab.tomlfile import read_toml
-from trimtab.wiring import make_engine
+from trimtab.wire.streamfile import read_events, write_corrected, write_events
+from trimtab.wire.tomlfile import read_toml
 from trimtab_sim.broker import PrivateBroker, mosquitto_path
 from trimtab_sim.embedded_broker import EmbeddedBroker
 from trimtab_sim.generate import write_stream

@@ -345,7 +345,7 @@ def generate(sc: Scenario, seed: int = 0) -> Stream:
 
 def write_stream(sc: Scenario, path: str | Path, seed: int = 0) -> int:
     """Generate ``sc`` under ``seed`` and write it as a stream file; returns the event count."""
-    from trimtab.streamfile import write_events
+    from trimtab.wire.streamfile import write_events
 
     count: int = write_events(path, generate(sc, seed).events)
     return count

@@ -18,10 +18,10 @@ from typing import Any
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion
 
-from trimtab.config import Config
+from trimtab.config.tree import Config
+from trimtab.engine.wiring import make_codec, status_topic, topic_templates
 from trimtab.errors import DecodeError, TransportError
 from trimtab.messages import Corrected, Reading, Reference
-from trimtab.wiring import make_codec, status_topic, topic_templates
 from trimtab_sim.progress import Progress
 
 

@@ -16,9 +16,9 @@ from typing import Annotated, Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from trimtab.errors import ConfigError, DecodeError
-from trimtab.sensorconfig import dotted, expand_errors
-from trimtab.tomlfile import read_toml
-from trimtab.topics import validate_sensor_id
+from trimtab.wire.fielderrors import dotted, expand_errors
+from trimtab.wire.tomlfile import read_toml
+from trimtab.wire.topics import validate_sensor_id
 
 NonNeg = Annotated[float, Field(ge=0.0)]
 Pos = Annotated[float, Field(gt=0.0)]

@@ -13,7 +13,7 @@ Metrics of a series v against truth y (n samples):
   truth, as ``scipy.stats.linregress(y, v)`` gives them);
 - NRMSE = RMSE / mean(y), normalised by the mean truth (not the range).
 
-The oracle is a batch ridge fit (``trimtab.ridge.solve``) that sees every reference in
+The oracle is a batch ridge fit (``trimtab.model.closedform.solve``) that sees every reference in
 hindsight: the stream is cut into consecutive blocks of ``oracle_days``; each block is
 predicted by a fit to the references within the block widened by half a block on each side
 (when that holds fewer references than there are weights, the references nearest the block's
@@ -42,7 +42,7 @@ from numpy.typing import NDArray
 
 from trimtab.errors import DataError
 from trimtab.messages import Corrected, Reading, Reference
-from trimtab.ridge import solve
+from trimtab.model.closedform import solve
 
 F64 = NDArray[np.float64]
 DAY = 86400.0

@@ -1,8 +1,8 @@
 """The soak: every reliability scenario at a chosen scale, with the figures each one reports.
 
-The scenarios themselves are the tests in ``tests/test_reliability.py``, ``test_outbox.py``,
-``test_storage_faults.py``, ``test_fuzz.py``, ``test_adversarial.py``, ``test_reload.py`` and
-``test_security.py``:
+The scenarios themselves are the tests in ``tests/service/test_reliability.py``,
+``service/test_outbox.py``, ``service/test_storage_faults.py``, ``wire/test_fuzz.py``,
+``engine/test_adversarial.py``, ``service/test_reload.py`` and ``service/test_security.py``:
 CI runs them at the small ``ci`` scale, and ``make soak`` (``python -m trimtab_sim.soak --scale
 full``) runs the same tests at the ``full`` scale — 20 kills, 5 broker restarts, 100,000 fuzz
 inputs per decoder, 100,000 malformed messages, 60 s of overload, a backlog of 200,000 readings
@@ -33,13 +33,14 @@ from typing import Any
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode
 
-from trimtab.codec import JsonCodec, SenmlCodec
 from trimtab.errors import DecodeError, TransportError
+from trimtab.wire.codec import JsonCodec, SenmlCodec
 
 SCALE_ENV = "TRIMTAB_SOAK_SCALE"
 FIGURES_ENV = "TRIMTAB_SOAK_FIGURES"
-TEST_FILES = ("test_reliability.py", "test_outbox.py", "test_storage_faults.py", "test_fuzz.py",
-              "test_adversarial.py", "test_reload.py", "test_security.py")
+TEST_FILES = ("service/test_reliability.py", "service/test_outbox.py",
+              "service/test_storage_faults.py", "wire/test_fuzz.py", "engine/test_adversarial.py",
+              "service/test_reload.py", "service/test_security.py")
 
 
 @dataclass(frozen=True, slots=True)

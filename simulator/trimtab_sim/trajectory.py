@@ -14,9 +14,9 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from trimtab.config import Config
+from trimtab.config.tree import Config
+from trimtab.engine.wiring import make_engine
 from trimtab.messages import Reading, Reference
-from trimtab.wiring import make_engine
 
 MARKED = ("rolled_back", "level_shift", "gated", "stuck")
 """Reference outcomes drawn as markers on the trajectory figure."""

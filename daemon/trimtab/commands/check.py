@@ -13,15 +13,15 @@ import argparse
 import json
 from typing import Any
 
-from trimtab.config import RELOADABLE, Config, file_problems, load_config
-from trimtab.engine import configured_prior, configured_scaler, prior_mode, spec_of
+from trimtab.commands.options import deprecated
+from trimtab.config.figures import derived_figures
+from trimtab.config.tree import RELOADABLE, Config, file_problems, load_config
+from trimtab.engine.engine import configured_prior, configured_scaler, prior_mode, spec_of
+from trimtab.engine.wiring import initial_models
 from trimtab.errors import ConfigError
-from trimtab.figures import derived_figures
-from trimtab.model import RidgeModel
-from trimtab.options import deprecated
-from trimtab.sensorconfig import key
-from trimtab.terms import Scaler
-from trimtab.wiring import initial_models
+from trimtab.model.online import RidgeModel
+from trimtab.model.terms import Scaler
+from trimtab.wire.fielderrors import key
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:

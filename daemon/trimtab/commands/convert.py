@@ -11,11 +11,11 @@ import argparse
 import sys
 from pathlib import Path
 
-from trimtab.csvstream import CsvLayout, describe_span, load_layout, read_csv_events
+from trimtab.commands.options import positive
 from trimtab.errors import DataError
 from trimtab.messages import Reference
-from trimtab.options import positive
-from trimtab.streamfile import write_events
+from trimtab.wire.csvstream import CsvLayout, describe_span, load_layout, read_csv_events
+from trimtab.wire.streamfile import write_events
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:

@@ -20,13 +20,13 @@ from typing import Any
 
 import numpy as np
 
-from trimtab.csvstream import parquet_rows, parse_number
 from trimtab.errors import DataError
 from trimtab.messages import Reference
-from trimtab.modelfile import save_model_file
-from trimtab.ridge import CVResult, FitReport, cross_validate, fit_model
-from trimtab.streamfile import read_events
-from trimtab.terms import TermSpec
+from trimtab.model.closedform import CVResult, FitReport, cross_validate, fit_model
+from trimtab.model.terms import TermSpec
+from trimtab.store.modelfile import save_model_file
+from trimtab.wire.csvstream import parquet_rows, parse_number
+from trimtab.wire.streamfile import read_events
 
 AUTO_GRID = tuple(float(v) for v in np.logspace(-3, 3, 13))
 """λ values ``--lambda auto`` tries: 10⁻³ … 10³ in half-decades (standardised units)."""

@@ -12,13 +12,13 @@ from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import TextIO
 
-from trimtab.config import load_config
-from trimtab.csvstream import readable_stream
-from trimtab.engine import Engine
+from trimtab.config.tree import load_config
+from trimtab.engine.engine import Engine
+from trimtab.engine.wiring import make_engine
 from trimtab.errors import DataError, DecodeError
 from trimtab.messages import Reading
-from trimtab.streamfile import encode_corrected_line, read_events
-from trimtab.wiring import make_engine
+from trimtab.wire.csvstream import readable_stream
+from trimtab.wire.streamfile import encode_corrected_line, read_events
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:

@@ -5,10 +5,10 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from trimtab.config import load_config
+from trimtab.config.tree import load_config
 from trimtab.errors import StateError, StateFault
 from trimtab.logs import configure_logging
-from trimtab.service import Service
+from trimtab.service.daemon import Service
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:

@@ -11,14 +11,14 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from trimtab.config import load_config
-from trimtab.engine import Engine
+from trimtab.config.tree import load_config
+from trimtab.engine.engine import Engine
+from trimtab.engine.wiring import make_engine
 from trimtab.errors import DataError, StateError
-from trimtab.modelfile import FORMAT as MODEL_FORMAT
-from trimtab.privatefile import write_private
-from trimtab.records import record_to_event
-from trimtab.statestore import StateStore
-from trimtab.wiring import make_engine
+from trimtab.store.modelfile import FORMAT as MODEL_FORMAT
+from trimtab.store.privatefile import write_private
+from trimtab.store.records import record_to_event
+from trimtab.store.statestore import StateStore
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:

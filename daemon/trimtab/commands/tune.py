@@ -1,7 +1,7 @@
 """``trimtab tune``: rank candidate learning settings on a recorded stream, all at once.
 
 Reads the stream once through the daemon's engine, evaluates every candidate the config
-validator accepts (see :mod:`trimtab.tuner`), prints a ranked table, the refused candidates,
+validator accepts (see :mod:`trimtab.tune.tuner`), prints a ranked table, the refused candidates,
 the chosen candidate's per-sensor scores and its settings as a ``[learning]`` snippet.
 Ctrl-C while reading stops reading and evaluates the events read so far; Ctrl-C while
 evaluating stops and reports the results so far (exit status 130 either way); a further
@@ -24,11 +24,10 @@ from types import FrameType
 from typing import Any
 
 from trimtab.commands.replay import counted
-from trimtab.config import load_config
-from trimtab.csvstream import readable_stream
+from trimtab.config.figures import derived_figures
+from trimtab.config.tree import load_config
 from trimtab.errors import DataError
-from trimtab.figures import derived_figures
-from trimtab.tunegrid import (
+from trimtab.tune.grid import (
     TUNED,
     Candidate,
     build_candidates,
@@ -36,7 +35,8 @@ from trimtab.tunegrid import (
     load_grid,
     search_settings,
 )
-from trimtab.tuner import Outcome, Score, TuneResult, snippet, tune_stream
+from trimtab.tune.tuner import Outcome, Score, TuneResult, snippet, tune_stream
+from trimtab.wire.csvstream import readable_stream
 
 DEFAULT_SEARCH = 64
 
@@ -355,7 +355,7 @@ def _run(args: argparse.Namespace) -> int:
             args.config_out.write_text(render(chosen, derived_figures(chosen),
                                               str(args.config_out)) + "\n", encoding="utf-8")
         if args.plot is not None:
-            from trimtab.tuneplot import plot_scores
+            from trimtab.tune.plot import plot_scores
 
             plot_scores(result, args.plot)
     print(_as_json(result) if args.json else "\n".join(_report(result, args)))

@@ -6,7 +6,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from trimtab.options import DeprecatedFlag
+from trimtab.commands.options import DeprecatedFlag
 from trimtab_sim.demo import embedded, run_demo
 
 

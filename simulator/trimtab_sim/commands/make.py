@@ -30,7 +30,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Generate the stream and write it; prints what was written."""
-    from trimtab.streamfile import write_events
+    from trimtab.wire.streamfile import write_events
 
     if args.seed < 0:
         print("trimtab-sim make: --seed must be >= 0", file=sys.stderr)

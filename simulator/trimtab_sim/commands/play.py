@@ -7,10 +7,10 @@ import sys
 import time
 from pathlib import Path
 
-from trimtab.config import load_config
+from trimtab.commands.options import positive
+from trimtab.config.tree import load_config
 from trimtab.errors import DataError
-from trimtab.options import positive
-from trimtab.streamfile import read_events
+from trimtab.wire.streamfile import read_events
 from trimtab_sim.mqttio import play
 from trimtab_sim.progress import progress_line
 

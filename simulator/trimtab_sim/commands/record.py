@@ -8,11 +8,11 @@ from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
 
-from trimtab.config import Config, load_config
+from trimtab.commands.options import positive
+from trimtab.config.tree import Config, load_config
 from trimtab.errors import DataError
 from trimtab.messages import Corrected, Reading
-from trimtab.options import positive
-from trimtab.streamfile import read_events, write_corrected
+from trimtab.wire.streamfile import read_events, write_corrected
 from trimtab_sim.mqttio import Recorder
 
 

@@ -8,8 +8,8 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from trimtab.commands.options import DeprecatedFlag
 from trimtab.errors import DataError
-from trimtab.options import DeprecatedFlag
 from trimtab_sim.report import EPA_TARGETS, TargetCheck, check_targets, summary_table, write_report
 from trimtab_sim.scenario import load_scenario
 from trimtab_sim.score import DAY, Joined, Result, Settings, join, score, to_jsonable
@@ -86,7 +86,7 @@ def _settings(args: argparse.Namespace) -> tuple[Settings, dict[str, list[float]
 
 def run(args: argparse.Namespace) -> int:
     """Join, score, print, and write the report when asked."""
-    from trimtab.streamfile import read_corrected, read_events
+    from trimtab.wire.streamfile import read_corrected, read_events
 
     settings, steps, targets = _settings(args)
     try:
@@ -110,7 +110,7 @@ def run(args: argparse.Namespace) -> int:
     )
     trajectories = None
     if args.config:
-        from trimtab.config import load_config
+        from trimtab.config.tree import load_config
         from trimtab_sim.trajectory import summary, trace
 
         trajectories = trace(load_config(args.config), read_events(args.stream))

@@ -1,0 +1,1 @@
+"""The configuration: the pydantic tree, sensor sections, routing, and the derived figures."""

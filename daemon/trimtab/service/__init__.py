@@ -1,0 +1,1 @@
+"""The daemon: lifecycle, MQTT transport, outbox, metrics, systemd notify, shard hand-over."""

@@ -1,0 +1,1 @@
+"""Durable state: the journal, checkpoints, the state store, model files, records."""

@@ -1,0 +1,1 @@
+"""The tuner: candidate grids, the record pass, K candidates on arrays, plots."""

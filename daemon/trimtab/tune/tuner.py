@@ -1,0 +1,538 @@
+"""The operators' tuner: every candidate's prequential score on a recorded stream, at once.
+
+A run has two phases. :func:`trimtab.tune.trace.record` replays the stream once through the
+daemon's engine with learning switched off, recording what every candidate shares (pairing,
+buffers, scaler, pending references). Then, for each sensor, the candidates whose features
+are standardised alike (they differ only when the model has an elapsed-time term, whose scale
+follows ``memory``) advance together through that record in a
+:class:`~trimtab.tune.vengine.VEngine`.
+
+Scores (both prequential: every value is predicted before the model learns from any later
+reference):
+
+* against **truth** — each corrected value the daemon would publish, minus the reading's
+  ``truth``, for every corrected reading that has one;
+* against **spans** — the references' residuals again, each counted once for every corrected
+  value published since the sensor's previous paired reference (at least once): the error of
+  the values it stands for, which is what sparse references (one collocation day a week, one
+  spot check a day) can say about every published value when there is no truth;
+* against **references** — each paired reference's residual: the model's prediction at the
+  paired inputs, taken before that reference is applied (or gated), minus the reference.
+
+With e_i those errors in stream order, per sensor S = (…(0 + e_1²) + e_2²…) and the pooled
+score over sensors in sorted order RMSE = √(ΣS / Σn); bias = Σe / Σn the same way. The
+**tune** part holds the events before ``t_first + split·(t_last − t_first)``, the **test**
+part the rest; candidates are ranked by their tune RMSE only.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import math
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal
+
+import numpy as np
+from numpy.typing import NDArray
+
+from trimtab.config.tree import Config
+from trimtab.engine.engine import elapsed_scale_days
+from trimtab.engine.guards import Guard
+from trimtab.errors import DataError
+from trimtab.model.online import RidgeModel
+from trimtab.model.stability import STEP_BOUND, step_check
+from trimtab.model.terms import Scaler
+from trimtab.tune.grid import TERMS, TUNED, Candidate
+from trimtab.tune.trace import SensorTrace, Trace, record
+from trimtab.tune.vengine import STATUSES, Common, Settings, VEngine, phi_rows
+
+__all__ = ["Against", "Outcome", "Score", "TuneResult", "Tuner", "snippet"]
+
+Against = Literal["truth", "references", "spans"]
+CHUNK = 4096
+"""Most readings predicted in one block (bounds a block's K × B arrays)."""
+
+
+@dataclass(frozen=True, slots=True)
+class Score:
+    """Sum of squared errors, sum of errors and their count, in stream order."""
+
+    sse: float = 0.0
+    total: float = 0.0
+    n: int = 0
+
+    @property
+    def rmse(self) -> float | None:
+        """√(sse / n), or None with no errors to score."""
+        return math.sqrt(self.sse / self.n) if self.n else None
+
+    @property
+    def bias(self) -> float | None:
+        """Mean error (corrected − truth, or prediction − reference), or None."""
+        return self.total / self.n if self.n else None
+
+
+@dataclass(slots=True)
+class Outcome:
+    """One evaluated candidate: scores, guard tallies and stability margins."""
+
+    candidate: Candidate
+    tune: Score
+    test: Score
+    per_sensor: dict[str, tuple[Score, Score]]
+    rollbacks: int
+    gated: int
+    margin: float
+    """Smallest step-stability margin (bound / actual) of stability.py over the config's sensor
+    settings, evaluated at this candidate's α and λ (the largest it ever uses)."""
+    reached: float
+    """2 / the largest a·(λ/m + ‖φ‖²) of any step it took: how near the steps actually came."""
+    folds: list[Score] = field(default_factory=list)
+    """The tune part's score in each of its consecutive time blocks (rolling origin)."""
+
+    def fold_spread(self) -> tuple[float, float] | None:
+        """The smallest and largest fold RMSE, or None when no fold was scored."""
+        got = [s.rmse for s in self.folds if s.rmse is not None]
+        return (min(got), max(got)) if got else None
+
+
+@dataclass(slots=True)
+class TuneResult:
+    """The ranked outcomes (best first), the refused candidates and what the run covered."""
+
+    against: Against
+    split: float
+    split_t: float | None
+    outcomes: list[Outcome]
+    refused: list[Candidate]
+    events: int
+    complete: bool
+    sensors: list[str] = field(default_factory=list)
+
+    @property
+    def best(self) -> Outcome | None:
+        """The candidate with the lowest tune RMSE, if any was scored."""
+        return self.outcomes[0] if self.outcomes and self.outcomes[0].tune.n else None
+
+
+def _scaler_for(tr: SensorTrace, base: RidgeModel, cand: Candidate) -> Scaler:
+    """The scaler the engine would fix for this candidate: only the elapsed scale can differ."""
+    assert cand.config is not None and tr.state is not None
+    settings = cand.config.sensor_settings(tr.sensor)
+    if settings.initial_state is not None or not base.spec.elapsed:
+        return base.scaler
+    scale = (*base.scaler.scale[:-1], elapsed_scale_days(cand.config))
+    return Scaler(base.scaler.centre, scale)
+
+
+class Tuner:
+    """Evaluate candidates on a recorded stream; see the module docstring."""
+
+    def __init__(self, trace: Trace, candidates: Sequence[Candidate], *, split: float = 0.7,
+                 against: Against | Literal["auto"] = "auto", folds: int = 3) -> None:
+        if not 1 <= folds <= 100:
+            raise DataError(f"folds = {folds}: give between 1 and 100 blocks of the tune part")
+        self.folds = folds
+        if not 0.0 < split <= 1.0:
+            raise DataError(f"split = {split}: give a fraction of the stream's time span in (0, 1]")
+        self.trace = trace
+        self.valid = [c for c in candidates if c.valid]
+        self.refused = [c for c in candidates if not c.valid]
+        self.split = split
+        if against == "auto":
+            against = "truth" if trace.has_truth else "references"
+        self.against: Against = against
+        t0, t1 = trace.t_first, trace.t_last
+        self.split_t = (None if t0 is None or t1 is None or split >= 1.0
+                        else t0 + split * (t1 - t0))
+        # sensor → [(engine, candidate positions in self.valid)]
+        self.engines: dict[str, list[tuple[VEngine, list[int]]]] = {}
+        self.raw_scores: dict[str, tuple[Score, Score]] = {}
+
+    # -- running ---------------------------------------------------------------------------------
+
+    def _part(self, t: float) -> int:
+        return 0 if self.split_t is None or t < self.split_t else 1
+
+    def _folds(self, t: NDArray[np.float64]) -> NDArray[np.int64]:
+        """Which of the tune part's consecutive time blocks each t falls in; -1 in the test
+        part (one computation for a sensor's readings and, one at a time, its references)."""
+        t0 = self.trace.t_first
+        end = self.split_t if self.split_t is not None else self.trace.t_last
+        if t0 is None or end is None:
+            return np.full(len(t), -1, dtype=np.int64)
+        block = (np.zeros(len(t)) if end <= t0
+                 else np.floor(self.folds * (t - t0) / (end - t0)))
+        fold = np.clip(block, 0, self.folds - 1).astype(np.int64)
+        if self.split_t is not None:
+            fold[t >= self.split_t] = -1
+        out: NDArray[np.int64] = fold
+        return out
+
+    def _fold(self, t: float) -> int:
+        """:meth:`_folds` of one time."""
+        return int(self._folds(np.array([t]))[0])
+
+    def _groups(self, tr: SensorTrace, base: RidgeModel) -> dict[Scaler, list[int]]:
+        groups: dict[Scaler, list[int]] = {}
+        for pos, cand in enumerate(self.valid):
+            groups.setdefault(_scaler_for(tr, base, cand), []).append(pos)
+        return groups
+
+    def _engine(self, tr: SensorTrace, base: RidgeModel, scaler: Scaler,
+                members: list[int]) -> VEngine:
+        d = base.to_dict()
+        d["scaler"] = scaler.to_dict()
+        template = RidgeModel.from_dict(d)
+        cfgs = [self.valid[p].config for p in members]
+        lcs = [c.learning for c in cfgs if c is not None]
+        settings = Settings(
+            alpha=np.array([lc.alpha for lc in lcs]), lam=np.array([lc.lam for lc in lcs]),
+            memory=np.array([float(lc.memory) for lc in lcs]),
+            delta=np.array([math.inf if lc.huber_delta is None else lc.huber_delta
+                            for lc in lcs]),
+            normalised=np.array([lc.normalised for lc in lcs]),
+            gate_k=np.array([lc.gate_k for lc in lcs]),
+            rollback_factor=np.array([lc.rollback_factor for lc in lcs]),
+            alpha_recovery=np.array([lc.alpha_recovery for lc in lcs]),
+            alpha_min=np.array([lc.alpha_min for lc in lcs]),
+            alpha_max=np.array([lc.alpha_max for lc in lcs]),
+            step_gap=np.array([lc.step_gap if lc.step_adapt == "gap" else math.inf
+                               for lc in lcs]),
+        )
+        cfg = self.trace.config
+        lc = cfg.learning
+        assert tr.state is not None
+        common = Common(gate_run=lc.gate_run, warmup=lc.warmup, snapshot_every=lc.snapshot_every,
+                        cap=cfg.output.cap, warm=tr.state.warm,
+                        error_window=lc.error_window, shift_after=lc.shift_after,
+                        band_coverage=cfg.output.band_coverage, band_gain=cfg.output.band_gain)
+        n = template.n_terms
+        scalers = None
+        if lc.scaler == "follow":
+            # the recorder's elapsed scale is the base config's; this group's may differ
+            scalers = [r.scaler if not template.spec.elapsed else
+                       Scaler(r.scaler.centre, (*r.scaler.scale[:-1], scaler.scale[-1]))
+                       for r in tr.refs]
+        moved = template.copy()
+        rows = []
+        for i, r in enumerate(tr.refs):
+            if scalers is not None:
+                moved.move_scaler(scalers[i])
+            rows.append(moved.phi(dict(zip(tr.inputs, r.values, strict=True)), r.t_pair)[0])
+        ref_phi = np.array(rows).reshape(len(tr.refs), n)
+        ref_y = np.array([r.y for r in tr.refs], dtype=np.float64)
+        ve = VEngine(template, settings, common, ref_phi, ref_y, scalers, folds=self.folds)
+        if self.against == "spans":
+            pos = np.array([r.pos for r in tr.refs], dtype=np.int64)
+            ve.ref_w = np.maximum(1, np.diff(pos, prepend=0))
+        return ve
+
+    def _drive(self, ve: VEngine, tr: SensorTrace, should_stop: Callable[[], bool],
+               tick: Callable[[int], None]) -> bool:
+        """Advance one engine through a sensor's record; False when told to stop."""
+        width = len(tr.inputs)
+        t = np.frombuffer(tr.out_t, dtype=np.float64)
+        X = np.frombuffer(tr.out_x, dtype=np.float64).reshape(-1, width)
+        truth = np.frombuffer(tr.out_truth, dtype=np.float64)
+        raw = X[:, 0]
+        part = (np.zeros(len(t), dtype=np.int8) if self.split_t is None
+                else (t >= self.split_t).astype(np.int8))
+        fold = self._folds(t)
+        ready = tr.unready
+        follow = ve.ref_scalers is not None
+        phi = None if follow else phi_rows(ve.model, X[ready:], t[ready:])
+        pos = 0
+        with np.errstate(all="ignore"):
+            for i in range(len(tr.refs) + 1):
+                nxt = tr.refs[i].pos if i < len(tr.refs) else tr.outputs
+                while pos < nxt:
+                    end = min(nxt, pos + CHUNK, ready if pos < ready else nxt)
+                    if pos < ready:
+                        block = None
+                    elif phi is None:
+                        block = phi_rows(ve.model, X[pos:end], t[pos:end], ve.scaler)
+                    else:
+                        block = phi[pos - ready : end - ready]
+                    ve.score_outputs(block, raw[pos:end], truth[pos:end], part[pos:end],
+                                     fold[pos:end])
+                    tick(end - pos)
+                    pos = end
+                    if should_stop():
+                        return False
+                if i < len(tr.refs):
+                    ref = tr.refs[i]
+                    ve.reference(i, ref.t, self._part(ref.t), self._fold(ref.t))
+                    tick(1)
+                    if i % 64 == 63 and should_stop():
+                        return False
+        return True
+
+    def _raw_only(self, tr: SensorTrace) -> tuple[Score, Score]:
+        """A sensor whose model never existed publishes every reading raw, for every candidate."""
+        acc = [[0.0, 0.0, 0], [0.0, 0.0, 0]]
+        for x_t, raw, truth in zip(tr.out_t, tr.out_x[:: len(tr.inputs)], tr.out_truth,
+                                   strict=True):
+            if math.isnan(truth):
+                continue
+            a = acc[self._part(x_t)]
+            e = raw - truth
+            a[0] += e * e
+            a[1] += e
+            a[2] += 1
+        return (Score(float(acc[0][0]), float(acc[0][1]), int(acc[0][2])),
+                Score(float(acc[1][0]), float(acc[1][1]), int(acc[1][2])))
+
+    def run(self, *, should_stop: Callable[[], bool] | None = None,
+            progress: Callable[[float], None] | None = None) -> TuneResult:
+        """Evaluate every valid candidate; ``should_stop`` ends early with the results so far."""
+        stop = should_stop or (lambda: False)
+        sensors = sorted(self.trace.sensors)
+        total = max(1, sum((s.outputs + len(s.refs)) * max(1, len(self._groups(s, m)))
+                           for s in self.trace.sensors.values()
+                           if (m := self.trace.models[s.sensor]) is not None and self.valid))
+        done = 0
+        last = -1.0
+
+        def tick(k: int) -> None:
+            nonlocal done, last
+            done += k
+            if progress is not None and done / total - last >= 0.01:
+                last = done / total
+                progress(last)
+
+        complete = self.trace.complete
+        for name in sensors:
+            tr = self.trace.sensors[name]
+            base = self.trace.models[name]
+            if base is None or not self.valid:
+                self.raw_scores[name] = self._raw_only(tr)
+                continue
+            self.engines[name] = []
+            for scaler, members in self._groups(tr, base).items():
+                ve = self._engine(tr, base, scaler, members)
+                self.engines[name].append((ve, members))
+                if not self._drive(ve, tr, stop, tick):
+                    complete = False
+                    break
+            if not complete:
+                break
+        return self._result(complete)
+
+    # -- results ---------------------------------------------------------------------------------
+
+    def _sensor_scores(self, pos: int) -> dict[str, tuple[Score, Score]]:
+        if self.against == "truth":
+            out: dict[str, tuple[Score, Score]] = dict(self.raw_scores)
+        else:  # a sensor without a model never paired a reference
+            out = {name: (Score(), Score()) for name in self.raw_scores}
+        for name, engines in self.engines.items():
+            for ve, members in engines:
+                if pos not in members:
+                    continue
+                j = members.index(pos)
+                if self.against == "truth":
+                    sse, tot, n = ve.out_sse, ve.out_sum, ve.out_n
+                    parts = [Score(float(sse[p, j]), float(tot[p, j]), int(n[p])) for p in (0, 1)]
+                else:
+                    sse, tot, nn = ve.ref_sse, ve.ref_sum, ve.ref_n
+                    parts = [Score(float(sse[p, j]), float(tot[p, j]), int(nn[p, j]))
+                             for p in (0, 1)]
+                out[name] = (parts[0], parts[1])
+        return dict(sorted(out.items()))
+
+    def _outcome(self, pos: int) -> Outcome:
+        cand = self.valid[pos]
+        per = self._sensor_scores(pos)
+        pooled = []
+        for p in (0, 1):
+            sse = tot = 0.0
+            n = 0
+            for scores in per.values():
+                sse += scores[p].sse
+                tot += scores[p].total
+                n += scores[p].n
+            pooled.append(Score(sse, tot, n))
+        rollbacks = gated = 0
+        gain = 0.0
+        for engines in self.engines.values():
+            for ve, members in engines:
+                if pos in members:
+                    j = members.index(pos)
+                    rollbacks += int(ve.rollbacks[j])
+                    gated += int(ve.counts["gated"][j])
+                    gain = max(gain, float(ve.max_gain[j]))
+        assert cand.config is not None
+        lc = cand.config.learning
+        margin = min(step_check(label, terms=s.term_count(), alpha_max=lc.alpha_max,
+                                lambda_max=lc.lambda_max, memory=lc.memory,
+                                clip=lc.feature_clip,
+                                normalised=lc.normalised).margin
+                     for label, s in cand.config.settings_groups().items())
+        reached = STEP_BOUND / gain if gain > 0.0 else math.inf
+        return Outcome(cand, pooled[0], pooled[1], per, rollbacks, gated, margin, reached,
+                       self._fold_scores(pos))
+
+    def _fold_scores(self, pos: int) -> list[Score]:
+        """The tune part's score per fold, pooled over sensors (raw-only sensors included)."""
+        sse = [0.0] * self.folds
+        n = [0] * self.folds
+        if self.against == "truth":
+            for tr in self.trace.sensors.values():
+                if self.trace.models[tr.sensor] is not None:
+                    continue
+                for x_t, raw, truth in zip(tr.out_t, tr.out_x[:: len(tr.inputs)],
+                                           tr.out_truth, strict=True):
+                    f = self._fold(x_t)
+                    if f >= 0 and not math.isnan(truth):
+                        sse[f] += (raw - truth) ** 2
+                        n[f] += 1
+        for engines in self.engines.values():
+            for ve, members in engines:
+                if pos not in members:
+                    continue
+                j = members.index(pos)
+                for f in range(self.folds):
+                    if self.against == "truth":
+                        sse[f] += float(ve.fold_out_sse[f, j])
+                        n[f] += int(ve.fold_out_n[f])
+                    else:
+                        sse[f] += float(ve.fold_ref_sse[f, j])
+                        n[f] += int(ve.fold_ref_n[f, j])
+        return [Score(a, 0.0, b) for a, b in zip(sse, n, strict=True)]
+
+    def _result(self, complete: bool) -> TuneResult:
+        outcomes = [self._outcome(p) for p in range(len(self.valid))]
+        outcomes.sort(key=lambda o: (o.tune.rmse is None, o.tune.rmse or 0.0, o.candidate.index))
+        return TuneResult(self.against, self.split, self.split_t, outcomes, self.refused,
+                          self.trace.events, complete, sorted(self.trace.sensors))
+
+    def engine_state(self, index: int) -> dict[str, Any]:
+        """The engine state ``trimtab replay --state-out`` leaves with candidate ``index``."""
+        pos = next((p for p, c in enumerate(self.valid) if c.index == index), None)
+        if pos is None:
+            raise DataError(f"candidate {index} was not evaluated")
+        cand = self.valid[pos]
+        assert cand.config is not None
+        state = copy.deepcopy(self.trace.engine_state)
+        counts = dict(self.trace.counts)
+        for name, d in state["sensors"].items():
+            if d["model"] is None:
+                d["guard"] = Guard(alpha=cand.config.learning.alpha).to_dict()
+                continue
+            for ve, members in self.engines.get(name, []):
+                if pos in members:
+                    j = members.index(pos)
+                    d.update(ve.candidate_state(j))
+                    tallies = {f"reference_{s}": int(ve.counts[s][j]) for s in STATUSES}
+                    tallies["prediction_non_finite"] = int(ve.prediction_non_finite[j])
+                    for key, v in tallies.items():
+                        counts[key] = counts.get(key, 0) + v
+        state["counts"] = {k: v for k, v in counts.items() if v}
+        return state
+
+
+def _toml_value(v: object) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, str):
+        return f'"{v}"'
+    return repr(v)
+
+
+def snippet(outcome: Outcome) -> str:
+    """The recommended settings as ``[learning]`` (and ``[sensors.defaults]`` terms) tables."""
+    s = outcome.candidate.settings
+    lines = ["[learning]"]
+    for key in TUNED:
+        if key in TERMS:
+            continue
+        v = s[key]
+        if v is None:
+            lines.append(f"# {key} unset (squared loss)")
+        else:
+            lines.append(f"{key} = {_toml_value(v)}")
+    lines.append("[sensors.defaults]")
+    for key in TERMS:
+        v = s[key]
+        assert isinstance(v, tuple)
+        lines.append(f"{key} = {json.dumps([list(x) if isinstance(x, tuple) else x for x in v])}")
+    return "\n".join(lines)
+
+
+def scaler_group(cfg: Config) -> tuple[Any, ...]:
+    """What a candidate's recorded pass depends on beyond pairing: its terms and how its
+    scaler moves."""
+    lc = cfg.learning
+    d = cfg.sensors.defaults
+    terms = (tuple(tuple(p) for p in d.products), tuple(d.squares))
+    return (terms, "fixed") if lc.scaler == "fixed" else (
+        terms, "follow", lc.scaler_span, lc.scaler_width)
+
+
+@dataclass(slots=True)
+class GroupedRun:
+    """One tuning run over candidates whose scalers move differently: one record pass each."""
+
+    result: TuneResult
+    tuners: list[Tuner]
+
+    def engine_state(self, index: int) -> dict[str, Any]:
+        """The engine state ``trimtab replay --state-out`` leaves with candidate ``index``."""
+        for tuner in self.tuners:
+            if any(c.index == index for c in tuner.valid):
+                return tuner.engine_state(index)
+        raise DataError(f"candidate {index} was not evaluated")
+
+
+def tune_stream(stream: str | Path, candidates: Sequence[Candidate], *, split: float = 0.7,
+                against: Against | Literal["auto"] = "auto",
+                should_stop: Callable[[], bool] | None = None,
+                read_progress: Callable[[int], None] | None = None,
+                progress: Callable[[float], None] | None = None,
+                base: Config | None = None, folds: int = 3) -> GroupedRun:
+    """Record the stream once per scaler group and evaluate each group's candidates on it.
+
+    Pairing, buffers and the moves of a followed scaler depend on no other tuned setting, so
+    candidates of one group share one record (:func:`trimtab.tune.trace.record`) and advance
+    together; the results are merged and ranked as one.
+    """
+    groups: dict[tuple[Any, ...], list[Candidate]] = {}
+    for c in candidates:
+        if c.config is not None:
+            groups.setdefault(scaler_group(c.config), []).append(c)
+    refused = [c for c in candidates if not c.valid]
+    if not groups:
+        if base is None:
+            raise DataError("no candidate was valid and no config was given to read the stream")
+        trace = record(base, stream, should_stop=should_stop, progress=read_progress)
+        tuner = Tuner(trace, refused, split=split, against=against, folds=folds)
+        return GroupedRun(tuner.run(should_stop=should_stop), [tuner])
+    tuners: list[Tuner] = []
+    results: list[TuneResult] = []
+    for i, members in enumerate(groups.values()):
+        assert members[0].config is not None
+        trace = record(members[0].config, stream, should_stop=should_stop,
+                       progress=read_progress)
+        tuner = Tuner(trace, members + (refused if i == 0 else []), split=split,
+                      against=against, folds=folds)
+        tuners.append(tuner)
+        done = len(results)
+
+        def part(f: float, done: int = done) -> None:
+            if progress is not None:
+                progress((done + f) / len(groups))
+
+        results.append(tuner.run(should_stop=should_stop, progress=part))
+        if not results[-1].complete:
+            break
+    first = results[0]
+    outcomes = [o for r in results for o in r.outcomes]
+    outcomes.sort(key=lambda o: (o.tune.rmse is None, o.tune.rmse or 0.0, o.candidate.index))
+    merged = TuneResult(first.against, first.split, first.split_t, outcomes, refused,
+                        first.events, all(r.complete for r in results) and
+                        len(results) == len(groups), first.sensors)
+    return GroupedRun(merged, tuners)
