@@ -22,7 +22,7 @@ import numpy as np
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion
 
-from trimtab.config.tree import Config, load_config
+from trimtab.config import Config, load_config
 from trimtab.engine.engine import Engine
 from trimtab.engine.wiring import make_engine
 from trimtab.messages import Reading, Reference

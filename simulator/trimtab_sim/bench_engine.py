@@ -23,7 +23,7 @@ from typing import Any
 
 import numpy as np
 
-from trimtab.config.tree import Config
+from trimtab.config import Config
 from trimtab.engine.engine import Engine
 from trimtab.messages import Reading, Reference
 from trimtab.model.online import RidgeModel

@@ -24,7 +24,7 @@ import tracemalloc
 from pathlib import Path
 from typing import Any
 
-from trimtab.config.tree import Config, load_config
+from trimtab.config import Config, load_config
 from trimtab.engine.engine import STATE_VERSION, Engine
 from trimtab.engine.pairing import ReadingBuffer
 from trimtab.messages import Reading, Reference

@@ -26,7 +26,7 @@ import tomllib
 from pathlib import Path
 from typing import Any
 
-from trimtab.config.tree import Config, parse_config
+from trimtab.config import Config, parse_config
 from trimtab.tune.grid import build_candidates, grid_settings
 from trimtab.tune.trace import record
 from trimtab.tune.tuner import Tuner

@@ -18,7 +18,7 @@ from pathlib import Path
 from typing import Any, Protocol
 
 from trimtab.commands.check import to_toml
-from trimtab.config.tree import Config, load_config
+from trimtab.config import Config, load_config
 from trimtab.engine.wiring import make_engine
 from trimtab.errors import TrimtabError
 from trimtab.messages import Reading

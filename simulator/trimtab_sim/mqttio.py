@@ -18,7 +18,7 @@ from typing import Any
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion
 
-from trimtab.config.tree import Config
+from trimtab.config import Config
 from trimtab.engine.wiring import make_codec, status_topic, topic_templates
 from trimtab.errors import DecodeError, TransportError
 from trimtab.messages import Corrected, Reading, Reference

@@ -14,7 +14,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from trimtab.config.tree import Config
+from trimtab.config import Config
 from trimtab.engine.wiring import make_engine
 from trimtab.messages import Reading, Reference
 

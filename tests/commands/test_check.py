@@ -11,7 +11,7 @@ from pathlib import Path
 import pytest
 
 from trimtab.cli import main
-from trimtab.config.tree import load_config, parse_config
+from trimtab.config import load_config, parse_config
 
 ROOT = Path(__file__).resolve().parents[2]
 SECTIONS = {"broker", "topics", "payload", "sensors", "learning", "pairing", "output", "state",

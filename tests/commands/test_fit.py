@@ -14,7 +14,7 @@ import pytest
 import scipy
 
 from trimtab.cli import main
-from trimtab.config.tree import load_config
+from trimtab.config import load_config
 from trimtab.engine.wiring import make_engine
 from trimtab.errors import DataError
 from trimtab.messages import Reading

@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 
 from trimtab.cli import main
-from trimtab.config.tree import load_config
+from trimtab.config import load_config
 from trimtab.engine.wiring import make_engine
 from trimtab.store.statestore import StateStore
 

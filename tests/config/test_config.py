@@ -13,7 +13,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from trimtab.config.tree import RELOADABLE, Config, load_config, parse_config, restart_required
+from trimtab.config import RELOADABLE, Config, load_config, parse_config, restart_required
 from trimtab.errors import ConfigError, ModelError
 from trimtab.model.online import RidgeModel
 from trimtab.model.stability import phi_sq_max, step_check

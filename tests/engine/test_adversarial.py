@@ -16,7 +16,7 @@ from collections.abc import Callable
 
 import pytest
 
-from trimtab.config.tree import Config, parse_config
+from trimtab.config import Config, parse_config
 from trimtab.engine.engine import Engine
 from trimtab.errors import DecodeError
 from trimtab.messages import Corrected, Reading, Reference

@@ -11,7 +11,7 @@ import math
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from trimtab.config.tree import parse_config
+from trimtab.config import parse_config
 from trimtab.engine.engine import Engine
 from trimtab.engine.guards import Guard, GuardSettings, gap_fraction, lifted
 from trimtab.messages import Reading, Reference

@@ -13,7 +13,7 @@ import paho.mqtt.client as mqtt
 import pytest
 from paho.mqtt.enums import CallbackAPIVersion
 
-from trimtab.config.tree import load_config
+from trimtab.config import load_config
 from trimtab.engine.wiring import status_topic
 from trimtab.messages import Reference
 from trimtab_sim.broker import PrivateBroker

@@ -13,7 +13,7 @@ from typing import Any
 import pytest
 from prometheus_client.parser import text_string_to_metric_families
 
-from trimtab.config.tree import MetricsSettings, load_config, parse_config
+from trimtab.config import MetricsSettings, load_config, parse_config
 from trimtab.engine.engine import RefOutcome
 from trimtab.engine.wiring import status_topic
 from trimtab.errors import ConfigError

@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 
-from trimtab.config.tree import load_config
+from trimtab.config import load_config
 from trimtab.engine.wiring import status_topic
 from trimtab_sim.broker import PrivateBroker
 from trimtab_sim.mqttio import play

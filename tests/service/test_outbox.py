@@ -16,7 +16,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from trimtab.config.tree import Config, load_config
+from trimtab.config import Config, load_config
 from trimtab.engine.wiring import make_codec, status_topic, topic_templates
 from trimtab.messages import Reading, Reference
 from trimtab.service.outbox import MARK_NAME, Mark, Outbox, OutboxMark, PublishResult
@@ -364,7 +364,8 @@ class TestRedeliveryInProcess:
     def test_redelivered_inputs_keep_their_output_and_restart_republishes_it(
             self, tmp_path: Path, broker: PrivateBroker) -> None:
         """The same batch delivered twice changes nothing; a restart queues identical values."""
-        from trimtab.service.daemon import Inbound, Service
+        from trimtab.service.daemon import Service
+        from trimtab.service.intake import Inbound
         from trimtab.service.transport import Transport
 
         cfg, _ = _setup(tmp_path, broker)
@@ -408,6 +409,6 @@ def endpoint_with_port(cfg: Config, port: int) -> Any:
     """The daemon's endpoint with another port (one where no broker listens)."""
     from dataclasses import replace
 
-    from trimtab.service.daemon import endpoint_of
+    from trimtab.service.transport import endpoint_of
 
     return replace(endpoint_of(cfg), port=port)

@@ -18,7 +18,7 @@ from collections import Counter
 from collections.abc import Iterator
 from pathlib import Path
 
-from trimtab.config.tree import Config, load_config
+from trimtab.config import Config, load_config
 from trimtab.engine.wiring import make_codec, status_topic, topic_templates
 from trimtab.errors import DecodeError
 from trimtab.messages import Corrected, Reading, Reference

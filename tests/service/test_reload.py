@@ -9,7 +9,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from trimtab.config.tree import apply_reload, load_config, parse_config, reloads_live
+from trimtab.config import apply_reload, load_config, parse_config, reloads_live
 from trimtab.engine.wiring import make_engine, status_topic
 from trimtab.messages import Reading, Reference
 from trimtab_sim.broker import PrivateBroker

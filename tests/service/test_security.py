@@ -30,7 +30,7 @@ from cryptography.x509.oid import NameOID
 from paho.mqtt.enums import CallbackAPIVersion
 from prometheus_client.parser import text_string_to_metric_families
 
-from trimtab.config.tree import load_config
+from trimtab.config import load_config
 from trimtab.engine.wiring import make_codec, status_topic
 from trimtab.errors import DecodeError
 from trimtab.messages import Reading

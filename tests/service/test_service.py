@@ -8,10 +8,11 @@ from pathlib import Path
 
 import pytest
 
-from trimtab.config.tree import load_config
+from trimtab.config import load_config
 from trimtab.errors import DecodeError
 from trimtab.messages import Reading
-from trimtab.service.daemon import Inbound, Service, engine_refusals
+from trimtab.service.daemon import Service
+from trimtab.service.intake import Inbound, engine_refusals
 
 from ..support import write_config
 

@@ -14,7 +14,7 @@ from typing import Any
 
 import pytest
 
-from trimtab.config.tree import Config, load_config, parse_config
+from trimtab.config import Config, load_config, parse_config
 from trimtab.engine.engine import Engine
 from trimtab.engine.wiring import status_topic
 from trimtab.errors import ConfigError

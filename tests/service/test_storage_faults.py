@@ -20,7 +20,7 @@ from typing import Any
 
 import pytest
 
-from trimtab.config.tree import load_config
+from trimtab.config import load_config
 from trimtab.engine.wiring import make_codec, status_topic
 from trimtab.messages import Reading
 from trimtab_sim.broker import PrivateBroker
@@ -194,7 +194,7 @@ class TestStorageFaultKinds:
     def test_only_errors_of_the_file_system_pause(self, tmp_path: Path) -> None:
         """ENOSPC/EROFS/EIO behind a StateError pause; damaged state is no storage fault."""
         from trimtab.errors import StateError
-        from trimtab.service.daemon import storage_fault
+        from trimtab.service.storage import storage_fault
 
         for code in (errno.ENOSPC, errno.EROFS, errno.EIO, errno.EDQUOT):
             try:

@@ -12,7 +12,7 @@ from pathlib import Path
 import pytest
 
 from trimtab.commands.check import to_toml
-from trimtab.config.tree import load_config
+from trimtab.config import load_config
 from trimtab.engine.wiring import make_engine
 from trimtab.wire.streamfile import read_corrected, read_events, write_events
 from trimtab_sim.broker import mosquitto_path

@@ -11,7 +11,7 @@ import paho.mqtt.client as mqtt
 import pytest
 from paho.mqtt.enums import CallbackAPIVersion
 
-from trimtab.config.tree import Config, load_config
+from trimtab.config import Config, load_config
 from trimtab.engine.wiring import make_codec, topic_templates
 from trimtab.messages import Corrected, Reading
 from trimtab.wire.streamfile import read_corrected, write_events

@@ -13,7 +13,7 @@ from pathlib import Path
 
 import pytest
 
-from trimtab.config.tree import load_config
+from trimtab.config import load_config
 from trimtab.engine.wiring import make_engine
 from trimtab.errors import StateError
 from trimtab.messages import Reference

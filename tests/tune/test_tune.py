@@ -30,7 +30,7 @@ from hypothesis import strategies as st
 from trimtab.cli import main as cli_main
 from trimtab.commands.check import to_toml
 from trimtab.commands.replay import replay
-from trimtab.config.tree import Config, load_config, parse_config
+from trimtab.config import Config, load_config, parse_config
 from trimtab.engine.wiring import make_engine
 from trimtab.errors import ConfigError, DataError
 from trimtab.messages import Reading, Reference

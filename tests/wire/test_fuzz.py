@@ -21,7 +21,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from trimtab.config.tree import load_config, parse_config
+from trimtab.config import load_config, parse_config
 from trimtab.engine.engine import Engine
 from trimtab.errors import ConfigError, DataError, DecodeError, StateError, TrimtabError
 from trimtab.messages import Reading, Reference

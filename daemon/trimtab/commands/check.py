@@ -14,8 +14,8 @@ import json
 from typing import Any
 
 from trimtab.commands.options import deprecated
+from trimtab.config import RELOADABLE, Config, file_problems, load_config
 from trimtab.config.figures import derived_figures
-from trimtab.config.tree import RELOADABLE, Config, file_problems, load_config
 from trimtab.engine.engine import configured_prior, configured_scaler, prior_mode, spec_of
 from trimtab.engine.wiring import initial_models
 from trimtab.errors import ConfigError

@@ -12,7 +12,7 @@ from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import TextIO
 
-from trimtab.config.tree import load_config
+from trimtab.config import load_config
 from trimtab.engine.engine import Engine
 from trimtab.engine.wiring import make_engine
 from trimtab.errors import DataError, DecodeError

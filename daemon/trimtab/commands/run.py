@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from trimtab.config.tree import load_config
+from trimtab.config import load_config
 from trimtab.errors import StateError, StateFault
 from trimtab.logs import configure_logging
 from trimtab.service.daemon import Service

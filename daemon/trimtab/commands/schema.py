@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 import json
 
-from trimtab.config.tree import Config
+from trimtab.config import Config
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:

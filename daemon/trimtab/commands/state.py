@@ -11,7 +11,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from trimtab.config.tree import load_config
+from trimtab.config import load_config
 from trimtab.engine.engine import Engine
 from trimtab.engine.wiring import make_engine
 from trimtab.errors import DataError, StateError

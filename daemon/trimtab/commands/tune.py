@@ -24,8 +24,8 @@ from types import FrameType
 from typing import Any
 
 from trimtab.commands.replay import counted
+from trimtab.config import load_config
 from trimtab.config.figures import derived_figures
-from trimtab.config.tree import load_config
 from trimtab.errors import DataError
 from trimtab.tune.grid import (
     TUNED,

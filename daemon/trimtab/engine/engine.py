@@ -31,7 +31,7 @@ from trimtab.model.ranges import RangeTracker, remap
 from trimtab.model.terms import Scaler, TermSpec
 
 if TYPE_CHECKING:
-    from trimtab.config.tree import Config, SensorSettings
+    from trimtab.config import Config, SensorSettings
 
 STATE_VERSION = 2
 _K = TypeVar("_K", float, "np.ndarray[Any, np.dtype[np.float64]]")

@@ -16,7 +16,7 @@ from trimtab.wire.codec import JsonCodec, SenmlCodec
 from trimtab.wire.topics import TopicTemplate
 
 if TYPE_CHECKING:
-    from trimtab.config.tree import Config
+    from trimtab.config import Config
 
 Codec = JsonCodec | SenmlCodec
 

@@ -9,25 +9,31 @@ engine. Clocks and files live here; the engine stays pure.
 
 from __future__ import annotations
 
-import errno
 import json
 import queue
 import signal
 import threading
 import time
 from collections import Counter
-from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field
+from collections.abc import Callable
 from pathlib import Path
 from types import FrameType
 from typing import TYPE_CHECKING, Any
 
-from trimtab.config.tree import apply_reload
+from trimtab.config import apply_reload
 from trimtab.engine.engine import Engine
 from trimtab.engine.wiring import make_codec, make_engine, status_topic, topic_templates
 from trimtab.errors import ConfigError, DecodeError, StateError
 from trimtab.logs import configure_logging, get_logger
 from trimtab.messages import Reading, Reference
+from trimtab.service.intake import (
+    BURST_QUIET,
+    Inbound,
+    Processed,
+    RejectLog,
+    decode,
+    engine_refusals,
+)
 from trimtab.service.metrics import Metrics
 from trimtab.service.notify import Notifier
 from trimtab.service.outbox import (
@@ -39,18 +45,18 @@ from trimtab.service.outbox import (
     with_output,
 )
 from trimtab.service.shards import HeldFile, SubscriptionLedger, plan_subscriptions, release
-from trimtab.service.transport import Backoff, Endpoint, Transport, read_password
+from trimtab.service.storage import StoragePause, storage_fault
+from trimtab.service.transport import Transport, endpoint_of
 from trimtab.store.records import event_to_record, record_to_event
 from trimtab.store.statestore import StateStore
 
 if TYPE_CHECKING:
-    from trimtab.config.tree import Config
+    from trimtab.config import Config
 
 log = get_logger("trimtab.service")
 
 QUEUE_LIMIT = 20000
 BATCH = 512
-BURST_QUIET = 10.0
 METRICS_REFRESH = 2.0
 MARK_EVERY = 0.2
 """Seconds between writes of the outbox mark (what the broker has taken)."""
@@ -60,96 +66,6 @@ PUBLISH_OUTCOMES = {"sent": "handed_to_client", "delivered": "delivered",
                     "deferred": "publish_deferred", "failed": "publish_failed",
                     "refused": "refused_by_broker"}
 """Metrics outcome of ``trimtab_messages_published_total`` → outbox counter."""
-STORAGE_ERRNOS = frozenset({errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EIO, errno.EACCES,
-                            errno.EPERM})
-"""Errors of the state directory that pause the daemon (they can clear) instead of ending it."""
-
-
-def storage_fault(exc: BaseException) -> OSError | None:
-    """The OSError of a full, read-only or failing file system behind ``exc``, if that is it."""
-    seen: BaseException | None = exc
-    while seen is not None:
-        if isinstance(seen, OSError) and seen.errno in STORAGE_ERRNOS:
-            return seen
-        seen = seen.__cause__
-    return None
-
-
-@dataclass(slots=True)
-class Processed:
-    """A batch the engine has handled, to be made durable, then acknowledged and published."""
-
-    batch: list[Inbound]
-    records: list[dict[str, Any]]
-    outputs: list[tuple[str, bytes]]
-    received: Counter[str]
-    held: list[dict[str, Any]] = field(default_factory=list)
-    has_reference: bool = False
-    journaled: bool = False
-    held_written: bool = False
-
-
-@dataclass(frozen=True, slots=True)
-class Inbound:
-    """One received MQTT message, as the network thread hands it on."""
-
-    topic: str
-    payload: bytes
-    mid: int
-    qos: int
-    arrived: float = 0.0
-
-
-class RejectLog:
-    """Counts rejected messages by reason; logs a reason once per burst, then a summary."""
-
-    def __init__(self, clock: Callable[[], float] = time.monotonic) -> None:
-        self.total: Counter[str] = Counter()
-        self._since: Counter[str] = Counter()
-        self._last: dict[str, float] = {}
-        self._clock = clock
-
-    def reject(self, reason: str, detail: str, topic: str) -> None:
-        self.total[reason] += 1
-        now = self._clock()
-        last = self._last.get(reason)
-        if last is None or now - last > BURST_QUIET:
-            self._last[reason] = now
-            log.warning("message_rejected", reason=reason, detail=detail[:200], topic=topic[:200])
-        else:
-            self._since[reason] += 1
-
-    def flush(self) -> None:
-        if self._since:
-            log.warning("messages_rejected_burst", counts=dict(self._since))
-            self._since.clear()
-
-
-ENGINE_KEPT = frozenset({"reading_accepted", "reference_applied", "reference_level_shift",
-                         "reference_pending", "scaler_moved"})
-"""Engine counters that are not a refusal, a drop or a guard's intervention."""
-
-
-def engine_refusals(before: Mapping[str, int], after: Mapping[str, int]) -> dict[str, int]:
-    """The engine's refusal and guard counters that grew between two readings of its counts."""
-    return {k: v - before.get(k, 0) for k, v in sorted(after.items())
-            if k not in ENGINE_KEPT and v > before.get(k, 0)}
-
-
-def endpoint_of(cfg: Config) -> Endpoint:
-    """The transport endpoint the ``[broker]`` section describes."""
-    b = cfg.broker
-    tls = b.tls
-    return Endpoint(
-        host=b.host, port=b.port, client_id=b.client_id, protocol=b.protocol,
-        keepalive=b.keepalive, session_expiry=b.session_expiry, username=b.username,
-        password=read_password(b.password_env, b.password_file),
-        tls=tls.enabled, ca_file=None if tls.ca_file is None else str(tls.ca_file),
-        cert_file=None if tls.cert_file is None else str(tls.cert_file),
-        key_file=None if tls.key_file is None else str(tls.key_file), verify=tls.verify,
-    )
-
-
 class Service:
     """One daemon: owns the engine, the state store and the transport."""
 
@@ -184,13 +100,7 @@ class Service:
         self._current_records = 0
         self._published_seen: dict[str, int] = {}
         self.journal_lost: dict[str, int] = {"bytes": 0, "records": 0}
-        # Storage faults: the batch that could not be made durable waits here, unacknowledged,
-        # and is written again with backoff; nothing more is taken in meanwhile.
-        self._stalled: Processed | None = None
-        self._stalled_since = 0.0
-        self._retry_at = 0.0
-        self._storage_backoff = Backoff(first=0.5, cap=30.0)
-        self.storage_pauses = 0
+        self.pause = StoragePause()
         self.recovery_differs = 0
         self._engine_logged: dict[str, int] = {}
         self.reloads: Counter[str] = Counter()
@@ -314,41 +224,8 @@ class Service:
     # -- message handling ----------------------------------------------------------------------
 
     def decode(self, msg: Inbound) -> tuple[Reading | Reference, bool, bool]:
-        """Topic and payload to (event, serve it, hold it); DecodeError with a reason otherwise.
-
-        The reason ``foreign`` marks a sensor this daemon knows another daemon serves.
-        """
-        sensors = self.cfg.sensors
-        sensor = self.t_readings.match(msg.topic)
-        if sensor is not None:
-            serve = self.cfg.sensor_allowed(sensor)
-            hold = not serve and sensor in sensors.incoming
-            if not (serve or hold):
-                raise DecodeError("foreign" if sensors.elsewhere(sensor) else "unknown_sensor",
-                                  sensor)
-            return self._timely(self.codec.decode_reading(sensor, msg.payload)), serve, hold
-        source = self.t_references.match(msg.topic)
-        if source is not None:
-            serve = bool(self.cfg.reference_targets(source))
-            hold = self.cfg.reference_incoming(source)
-            if not (serve or hold):
-                raise DecodeError("foreign" if sensors.elsewhere(source) else "unknown_sensor",
-                                  source)
-            return self._timely(self.codec.decode_reference(source, msg.payload)), serve, hold
-        raise DecodeError("unknown_topic", msg.topic)
-
-    def _timely(self, event: Reading | Reference) -> Reading | Reference:
-        """Refuse an event stamped further ahead of the daemon's clock than pairing.max_future.
-
-        One reading stamped in the year 9999 would otherwise become the sensor's clock and
-        leave every later reference unmatched, or every later reference out of order. Past
-        times are left to the engine (late and replayed data are normal); refused events are
-        never journaled, so recovery and the running daemon agree.
-        """
-        ahead = event.t - time.time()
-        if ahead > self.cfg.pairing.max_future:
-            raise DecodeError("future_time", f"t = {event.t} is {ahead:.0f} s ahead of the clock")
-        return event
+        """Topic and payload to (event, serve it, hold it); see ``intake.decode``."""
+        return decode(self.cfg, self.codec, self.t_readings, self.t_references, msg)
 
     def handle_batch(self, batch: list[Inbound]) -> None:
         """Decode and process a batch, journal it with its outputs, then acknowledge it.
@@ -424,10 +301,10 @@ class Service:
             fault = storage_fault(exc)
             if fault is None:
                 raise
-            self._stall(work, fault, str(exc))
+            self.pause.begin(work, fault, str(exc), str(self.cfg.state.dir))
             return False
-        if self._stalled is not None:
-            self._resume()
+        if self.pause.work is not None:
+            self.pause.end(str(self.cfg.state.dir))
         for msg in work.batch:
             self.transport.ack(msg.mid, msg.qos)
         # Acknowledgements are queued before the values: once the broker has acknowledged a
@@ -452,29 +329,6 @@ class Service:
                 self._published_seen[outcome] = value
         return delta
 
-    # -- storage faults ------------------------------------------------------------------------
-
-    def _stall(self, work: Processed, fault: OSError, detail: str) -> None:
-        now = time.monotonic()
-        if self._stalled is None:
-            self.storage_pauses += 1
-            self._stalled_since = now
-            self._storage_backoff.reset()
-            log.error("storage_unavailable", path=fault.filename or str(self.cfg.state.dir),
-                      error=fault.strerror, errno=errno.errorcode.get(fault.errno or 0, "?"),
-                      detail=detail[:300], waiting=len(work.batch),
-                      hint="inputs are not acknowledged and wait at the broker; retrying")
-        self._stalled = work
-        self._retry_at = now + self._storage_backoff.next()
-
-    def _resume(self) -> None:
-        log.info("storage_available", path=str(self.cfg.state.dir),
-                 paused_s=round(time.monotonic() - self._stalled_since, 3))
-        self._stalled = None
-
-    def _retry_stalled(self, now: float) -> None:
-        if self._stalled is not None and now >= self._retry_at:
-            self._commit(self._stalled)
 
     def _drain(self) -> list[Inbound]:
         try:
@@ -498,7 +352,7 @@ class Service:
         (its records are no longer replayed). Returns False when storage refused it (logged;
         the journal still holds everything, and it is tried again later).
         """
-        if self._stalled is not None or self.outbox.pending():
+        if self.pause.work is not None or self.outbox.pending():
             return False
         try:
             gen = self.store.checkpoint(self.engine.state_dict())
@@ -546,7 +400,7 @@ class Service:
         stats["foreign"] = self.foreign
         stats["held"] = {"count": self.held.count, "first_t": dict(self.held.first_t)}
         stats["outbox"] = self.outbox.stats()
-        stats["storage"] = {"pauses": self.storage_pauses, "paused": self._stalled is not None}
+        stats["storage"] = {"pauses": self.pause.pauses, "paused": self.pause.work is not None}
         stats["recovery_output_differs"] = self.recovery_differs
         stats["journal_lost"] = dict(self.journal_lost)
         stats["reloads"] = dict(self.reloads)
@@ -680,8 +534,10 @@ class Service:
         reload_retry = 0.0
         while not self._stop.is_set():
             now = time.monotonic()
-            if self._stalled is not None:
-                self._retry_stalled(now)
+            if self.pause.work is not None:
+                held = self.pause.due(now)
+                if held is not None:
+                    self._commit(held)
                 self._stop.wait(0.05)
             elif (self.outbox.full() or ((checkpoint_due or reload_due)
                                          and self.outbox.pending())) \
@@ -719,14 +575,14 @@ class Service:
             if self._reload.is_set():
                 self._reload.clear()
                 reload_due = True
-            if reload_due and now >= reload_retry and self._stalled is None \
+            if reload_due and now >= reload_retry and self.pause.work is None \
                     and not self.outbox.pending():
                 # applied with the outbox empty, so the checkpoint before it can be written
                 reload_due = not self.reload()
                 reload_retry = now + 5.0
             if now >= next_checkpoint and self._dirty:
                 checkpoint_due = True
-            if checkpoint_due and self._stalled is None and not self.outbox.pending():
+            if checkpoint_due and self.pause.work is None and not self.outbox.pending():
                 checkpoint_due = False
                 next_checkpoint = now + self.cfg.state.checkpoint_every
                 self.checkpoint()
@@ -765,8 +621,8 @@ class Service:
     def _shutdown(self) -> None:
         log.info("service_stopping")
         self.notifier.stopping()
-        left = self._drain_outbox(STOP_DRAIN) if self._stalled is None else 0
-        if self._stalled is not None:
+        left = self._drain_outbox(STOP_DRAIN) if self.pause.work is None else 0
+        if self.pause.work is not None:
             # The engine holds a batch that is not on disk and not acknowledged: no checkpoint
             # (it would record events the broker will deliver again).
             log.warning("checkpoint_skipped_storage_unavailable", path=str(self.cfg.state.dir))

@@ -45,7 +45,7 @@ from trimtab import __version__
 from trimtab.errors import ConfigError, TransportError
 
 if TYPE_CHECKING:
-    from trimtab.config.tree import MetricsSettings
+    from trimtab.config import MetricsSettings
     from trimtab.engine.engine import Engine, RefOutcome
 
 __all__ = ["LATENCY_BUCKETS", "LatencyHistogram", "Metrics", "reference_outcome"]

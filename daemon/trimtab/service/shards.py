@@ -42,7 +42,7 @@ from trimtab.store.privatefile import write_private
 from trimtab.store.records import record_to_event
 
 if TYPE_CHECKING:
-    from trimtab.config.tree import Config
+    from trimtab.config import Config
     from trimtab.engine.engine import Engine
 
 __all__ = ["HeldFile", "Released", "SubscriptionLedger", "plan_subscriptions", "release",

@@ -21,7 +21,7 @@ import threading
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode
@@ -33,6 +33,9 @@ from paho.mqtt.subscribeoptions import SubscribeOptions
 from trimtab.errors import ConfigError, TransportError
 from trimtab.logs import get_logger
 from trimtab.service.outbox import PublishResult
+
+if TYPE_CHECKING:
+    from trimtab.config import Config
 
 log = get_logger("trimtab.transport")
 
@@ -371,3 +374,17 @@ class Transport:
             self._client.loop(timeout=0.1)
         except (OSError, ValueError):
             pass
+
+
+def endpoint_of(cfg: Config) -> Endpoint:
+    """The transport endpoint the ``[broker]`` section describes."""
+    b = cfg.broker
+    tls = b.tls
+    return Endpoint(
+        host=b.host, port=b.port, client_id=b.client_id, protocol=b.protocol,
+        keepalive=b.keepalive, session_expiry=b.session_expiry, username=b.username,
+        password=read_password(b.password_env, b.password_file),
+        tls=tls.enabled, ca_file=None if tls.ca_file is None else str(tls.ca_file),
+        cert_file=None if tls.cert_file is None else str(tls.cert_file),
+        key_file=None if tls.key_file is None else str(tls.key_file), verify=tls.verify,
+    )

@@ -8,7 +8,7 @@ checked for stability at its own bounds: its λ is its ``lambda_max``; its α is
 ``alpha_max`` unless the gap lift is on (``step_adapt = "gap"``), when ``alpha_max`` is at
 least α; ``alpha_min`` is lowered to α when needed. A candidate is never refused because of a
 bound it does not use. Each candidate is merged into the config's own TOML document and run
-through :func:`trimtab.config.tree.parse_config`, so it is refused for exactly the reasons
+through :func:`trimtab.config.parse_config`, so it is refused for exactly the reasons
 ``trimtab check`` would give; a refused candidate is reported with those reasons and never
 evaluated.
 
@@ -45,7 +45,7 @@ from typing import Any
 
 import numpy as np
 
-from trimtab.config.tree import Config, LearningSettings, parse_config
+from trimtab.config import Config, LearningSettings, parse_config
 from trimtab.engine.wiring import initial_models
 from trimtab.errors import ConfigError, DataError
 from trimtab.wire.tomlfile import read_toml

@@ -29,7 +29,7 @@ from typing import Any
 
 import numpy as np
 
-from trimtab.config.tree import Config
+from trimtab.config import Config
 from trimtab.engine.engine import Engine, SensorState
 from trimtab.engine.wiring import initial_models
 from trimtab.errors import DataError, DecodeError

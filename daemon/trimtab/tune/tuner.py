@@ -38,7 +38,7 @@ from typing import Any, Literal
 import numpy as np
 from numpy.typing import NDArray
 
-from trimtab.config.tree import Config
+from trimtab.config import Config
 from trimtab.engine.engine import elapsed_scale_days
 from trimtab.engine.guards import Guard
 from trimtab.errors import DataError

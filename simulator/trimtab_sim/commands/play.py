@@ -8,7 +8,7 @@ import time
 from pathlib import Path
 
 from trimtab.commands.options import positive
-from trimtab.config.tree import load_config
+from trimtab.config import load_config
 from trimtab.errors import DataError
 from trimtab.wire.streamfile import read_events
 from trimtab_sim.mqttio import play

@@ -9,7 +9,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from trimtab.commands.options import positive
-from trimtab.config.tree import Config, load_config
+from trimtab.config import Config, load_config
 from trimtab.errors import DataError
 from trimtab.messages import Corrected, Reading
 from trimtab.wire.streamfile import read_events, write_corrected

@@ -110,7 +110,7 @@ def run(args: argparse.Namespace) -> int:
     )
     trajectories = None
     if args.config:
-        from trimtab.config.tree import load_config
+        from trimtab.config import load_config
         from trimtab_sim.trajectory import summary, trace
 
         trajectories = trace(load_config(args.config), read_events(args.stream))
