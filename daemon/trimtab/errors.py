@@ -7,6 +7,17 @@ class TrimtabError(Exception):
     """Base of every error trimtab raises on purpose."""
 
 
+class ArgumentError(TrimtabError, ValueError):
+    """A value handed to a function or constructor is outside what it accepts (a parameter, a
+    name, a template). Also a ``ValueError``, the type pydantic validators and the standard
+    library expect from such checks."""
+
+
+class EncodeError(TrimtabError, ValueError):
+    """A value cannot be written in the chosen format: a non-finite number, a time or flag the
+    format cannot carry. Also a ``ValueError``, as the standard library's encoders raise."""
+
+
 class ModelError(TrimtabError):
     """A model cannot be built, fitted or updated as asked (e.g. an unsolvable fit)."""
 

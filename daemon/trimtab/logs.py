@@ -32,7 +32,6 @@ from collections.abc import Mapping
 from typing import Any, Literal, TextIO, cast
 
 import structlog
-from structlog._config import BoundLoggerLazyProxy
 from structlog.typing import EventDict, FilteringBoundLogger, Processor, WrappedLogger
 
 from trimtab.errors import ConfigError
@@ -156,6 +155,7 @@ def configure_logging(
     chosen = _resolve_format(fmt, out)
 
     shared: list[Processor] = [
+        _name_key,
         structlog.contextvars.merge_contextvars,
         structlog.processors.add_log_level,
         structlog.processors.TimeStamper(fmt="iso", utc=True, key="timestamp"),
@@ -231,9 +231,13 @@ def get_logger(name: str | None = None) -> FilteringBoundLogger:
     """A structlog logger; ``name`` (usually ``__name__``) is added to each event as ``logger``."""
     if name is None:
         return cast(FilteringBoundLogger, structlog.get_logger())
-    # structlog.get_logger(logger=...) collides with its own parameter named ``logger``; the
-    # lazy proxy is what get_logger builds, so build it directly with that initial value.
-    return cast(
-        FilteringBoundLogger,
-        BoundLoggerLazyProxy(None, initial_values={"logger": name}, logger_factory_args=()),
-    )
+    # structlog.get_logger(logger=...) collides with its own parameter named ``logger``: the
+    # name travels as ``logger_name`` and _name_key renames it in every event.
+    return cast(FilteringBoundLogger, structlog.get_logger(logger_name=name))
+
+
+def _name_key(_logger: WrappedLogger, _method: str, event: EventDict) -> EventDict:
+    """Put a named logger's name under the key ``logger`` (see :func:`get_logger`)."""
+    if "logger_name" in event:
+        event["logger"] = event.pop("logger_name")
+    return event

@@ -12,7 +12,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from trimtab.engine.pairing import Paired, ReadingBuffer, Unmatched, pair
-from trimtab.errors import StateError
+from trimtab.errors import ArgumentError, StateError
 from trimtab.messages import Reference
 
 INPUTS = ("raw", "temp", "rh")
@@ -121,9 +121,9 @@ class TestReadingBuffer:
     def test_refuses_bad_readings(self) -> None:
         """Wrong arity or non-finite values are refused rather than stored."""
         buf = ReadingBuffer(("raw", "temp"), 60.0, 10)
-        with pytest.raises(ValueError, match="expected 2"):
+        with pytest.raises(ArgumentError, match="expected 2"):
             buf.add(0.0, [1.0])
-        with pytest.raises(ValueError, match="non-finite"):
+        with pytest.raises(ArgumentError, match="non-finite"):
             buf.add(float("nan"), [1.0, 2.0])
 
     @pytest.mark.parametrize(
@@ -135,7 +135,7 @@ class TestReadingBuffer:
         self, inputs: tuple[str, ...], span: float, capacity: int
     ) -> None:
         """No inputs, duplicate inputs, a non-positive or infinite span, or capacity < 1 fail."""
-        with pytest.raises(ValueError):
+        with pytest.raises(ArgumentError):
             ReadingBuffer(inputs, span, capacity)
 
     @given(rows)
@@ -223,6 +223,6 @@ class TestPair:
 
     def test_refuses_a_bad_anchor(self) -> None:
         """An anchor other than 'start' or 'end' is a programming error."""
-        with pytest.raises(ValueError, match="anchor"):
+        with pytest.raises(ArgumentError, match="anchor"):
             pair(self.buffer(), Reference(1.0, "s", 1.0), default_window=None,
                  anchor="middle", tolerance=1.0)  # type: ignore[arg-type]  # fmt: skip

@@ -15,7 +15,7 @@ import pytest
 
 from trimtab.config import load_config
 from trimtab.engine.wiring import make_engine
-from trimtab.errors import StateError
+from trimtab.errors import ArgumentError, StateError
 from trimtab.messages import Reference
 from trimtab.store.checkpoint import CheckpointStore, checkpoint_name
 
@@ -119,7 +119,7 @@ class TestCheckpointWrite:
 
     def test_keep_below_one_is_refused(self, tmp_path: Path) -> None:
         """keep=0 would delete every checkpoint and is refused at construction."""
-        with pytest.raises(ValueError, match="keep must be at least 1"):
+        with pytest.raises(ArgumentError, match="keep must be at least 1"):
             CheckpointStore(tmp_path, keep=0)
 
 

@@ -10,7 +10,7 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from trimtab.errors import DecodeError
+from trimtab.errors import ArgumentError, DecodeError, EncodeError
 from trimtab.messages import Corrected, Reading, Reference
 from trimtab.wire.codec import (
     MAX_ABS,
@@ -271,7 +271,7 @@ class TestJsonCodec:
     )
     def test_refuses_inconsistent_construction(self, kwargs: dict[str, object]) -> None:
         """Empty or clashing field names and a useless size limit are refused at construction."""
-        with pytest.raises(ValueError):
+        with pytest.raises(ArgumentError):
             JsonCodec(**kwargs)  # type: ignore[arg-type]
 
     def test_corrected_has_the_design_fields(self) -> None:
@@ -284,7 +284,7 @@ class TestJsonCodec:
 
     def test_corrected_refuses_non_finite(self) -> None:
         """A non-finite corrected value is a programming error, refused rather than written."""
-        with pytest.raises(ValueError, match="band"):
+        with pytest.raises(EncodeError, match="band"):
             self.codec.encode_corrected(Corrected(T0, "s", 1.0, 1.0, math.inf))
 
     @pytest.mark.parametrize(
@@ -477,7 +477,7 @@ class TestSenmlCodec:
 
     def test_corrected_refuses_a_relative_time(self) -> None:
         """A time below 2**28 cannot be written, since SenML would read it as relative."""
-        with pytest.raises(ValueError, match="relative"):
+        with pytest.raises(EncodeError, match="relative"):
             self.codec.encode_corrected(Corrected(1000.0, "s", 1.0, 1.0, 0.0))
 
     def test_corrected_rejects_mixed_sensors(self) -> None:
@@ -496,7 +496,7 @@ class TestSenmlCodec:
     )  # fmt: skip
     def test_refuses_inconsistent_construction(self, kwargs: dict[str, object]) -> None:
         """Names with separators or clashing names are refused at construction."""
-        with pytest.raises(ValueError):
+        with pytest.raises(ArgumentError):
             SenmlCodec(**kwargs)  # type: ignore[arg-type]
 
 
@@ -537,7 +537,7 @@ class TestCodecContract:
     @pytest.mark.parametrize("codec", WITH_COVARIATES, ids=["json", "senml"])
     def test_encode_reading_needs_the_raw_value(self, codec: Codec) -> None:
         """A reading without its raw value cannot be encoded; absent covariates are left out."""
-        with pytest.raises(ValueError, match="no input 'raw'"):
+        with pytest.raises(EncodeError, match="no input 'raw'"):
             codec.encode_reading(Reading(T0, "s", {"temp": 2.0}))
         partial = Reading(T0, "s", {"raw": 1.0, "temp": 2.0})
         assert codec.decode_reading("s", codec.encode_reading(partial)) == partial

@@ -380,7 +380,7 @@ class TestJournalAndCheckpoint:
             if isinstance(x, bytes):
                 try:
                     decode_checkpoint(x, 3)
-                except ValueError as exc:
+                except StateError as exc:
                     assert str(exc)
                 return
             try:  # a state that passed its checksum but is not what this build writes

@@ -10,7 +10,7 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from trimtab.errors import DataError, DecodeError
+from trimtab.errors import DataError, DecodeError, EncodeError
 from trimtab.messages import Corrected, Reading, Reference
 from trimtab.wire.codec import MAX_ABS
 from trimtab.wire.streamfile import (
@@ -174,7 +174,7 @@ class TestEncodeEvent:
 
     def test_refuses_non_finite(self) -> None:
         """A non-finite value cannot be written into a stream file."""
-        with pytest.raises(ValueError, match="input 'raw'"):
+        with pytest.raises(EncodeError, match="input 'raw'"):
             encode_event(Reading(T0, "s", {"raw": float("nan")}))
 
 

@@ -8,7 +8,7 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from trimtab.errors import DecodeError
+from trimtab.errors import ArgumentError, DecodeError
 from trimtab.wire.topics import SENSOR_ID_PATTERN, TopicTemplate, validate_sensor_id
 
 valid_ids = st.from_regex(SENSOR_ID_PATTERN, fullmatch=True).filter(lambda s: ".." not in s)
@@ -107,5 +107,5 @@ class TestTopicTemplate:
     )
     def test_rejects_bad_templates(self, template: str, message: str) -> None:
         """A template that cannot be a per-sensor topic is refused with a message saying why."""
-        with pytest.raises(ValueError, match=message):
+        with pytest.raises(ArgumentError, match=message):
             TopicTemplate(template)

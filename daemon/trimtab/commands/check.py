@@ -18,7 +18,7 @@ from trimtab.config import RELOADABLE, Config, file_problems, load_config
 from trimtab.config.figures import derived_figures
 from trimtab.engine.engine import configured_prior, configured_scaler, prior_mode, spec_of
 from trimtab.engine.wiring import initial_models
-from trimtab.errors import ConfigError
+from trimtab.errors import ConfigError, EncodeError
 from trimtab.model.online import RidgeModel
 from trimtab.model.terms import Scaler
 from trimtab.wire.fielderrors import key
@@ -223,4 +223,4 @@ def _value(v: Any) -> str:
         return json.dumps(v, ensure_ascii=False)
     if isinstance(v, tuple | list):
         return "[" + ", ".join(_value(x) for x in v) + "]"
-    raise TypeError(f"cannot write {type(v).__name__} as TOML")
+    raise EncodeError(f"cannot write {type(v).__name__} as TOML")

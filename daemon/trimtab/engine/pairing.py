@@ -20,7 +20,7 @@ from typing import Literal
 
 import numpy as np
 
-from trimtab.errors import StateError
+from trimtab.errors import ArgumentError, StateError
 from trimtab.messages import Reference
 
 __all__ = ["Paired", "ReadingBuffer", "Unmatched", "pair"]
@@ -45,15 +45,15 @@ class ReadingBuffer:
     def __init__(self, inputs: Sequence[str], span: float, capacity: int) -> None:
         names = list(inputs)
         if not names or any(not isinstance(n, str) or not n for n in names):
-            raise ValueError(f"inputs must be one or more non-empty names, got {names!r}")
+            raise ArgumentError(f"inputs must be one or more non-empty names, got {names!r}")
         if len(set(names)) != len(names):
-            raise ValueError(f"inputs must be distinct, got {names!r}")
+            raise ArgumentError(f"inputs must be distinct, got {names!r}")
         if isinstance(span, bool) or not isinstance(span, int | float) or not span > 0:
-            raise ValueError(f"span must be a number of seconds > 0, got {span!r}")
+            raise ArgumentError(f"span must be a number of seconds > 0, got {span!r}")
         if not math.isfinite(span):
-            raise ValueError(f"span must be finite, got {span!r}")
+            raise ArgumentError(f"span must be finite, got {span!r}")
         if isinstance(capacity, bool) or not isinstance(capacity, int) or capacity < 1:
-            raise ValueError(f"capacity must be an integer >= 1, got {capacity!r}")
+            raise ArgumentError(f"capacity must be an integer >= 1, got {capacity!r}")
         self.inputs: tuple[str, ...] = tuple(names)
         self.span = float(span)
         self.capacity = capacity
@@ -93,10 +93,11 @@ class ReadingBuffer:
     def add(self, t: float, values: Sequence[float]) -> None:
         """Buffer one reading's inputs (in ``inputs`` order) at event time ``t``."""
         if len(values) != self._width - 1:
-            raise ValueError(f"expected {self._width - 1} values {self.inputs}, got {len(values)}")
+            raise ArgumentError(f"expected {self._width - 1} values {self.inputs}, "
+                                f"got {len(values)}")
         row = array("d", [t, *values])
         if not all(map(math.isfinite, row)):
-            raise ValueError(f"reading at t={t!r} has a non-finite time or value: {list(row)}")
+            raise ArgumentError(f"reading at t={t!r} has a non-finite time or value: {list(row)}")
         data, w = self._data, self._width
         newest = data[-w] if len(data) > self._head * w else None
         if newest is None or t >= newest:
@@ -189,12 +190,12 @@ class ReadingBuffer:
             inputs, span, capacity = d["inputs"], d["span"], d["capacity"]
             dropped, rows = d["dropped"], d["data"]
             if not isinstance(inputs, list) or not isinstance(rows, list | str):
-                raise TypeError("inputs and data must be lists (data may be a Base64 string)")
+                raise ArgumentError("inputs and data must be lists (data may be a Base64 string)")
             if not isinstance(capacity, int) or not isinstance(span, int | float):
-                raise TypeError("capacity must be an integer and span a number")
+                raise ArgumentError("capacity must be an integer and span a number")
             buf = cls([str(n) for n in inputs], float(span), capacity)
             if isinstance(dropped, bool) or not isinstance(dropped, int) or dropped < 0:
-                raise ValueError(f"dropped must be a count, got {dropped!r}")
+                raise ArgumentError(f"dropped must be a count, got {dropped!r}")
             data = array("d", rows) if isinstance(rows, list) else _unpack(rows)
         except (KeyError, TypeError, ValueError) as exc:
             raise StateError(f"reading buffer state is malformed: {exc}") from exc
@@ -214,13 +215,13 @@ class ReadingBuffer:
 
 
 def _unpack(text: str) -> array[float]:
-    """The numbers of a packed ``data`` string; ValueError if it is not whole binary64s."""
+    """The numbers of a packed ``data`` string; ArgumentError if it is not whole binary64s."""
     try:
         raw = binascii.a2b_base64(text.encode("ascii"), strict_mode=True)
     except (binascii.Error, UnicodeEncodeError) as exc:
-        raise ValueError(f"data is not Base64: {exc}") from None
+        raise ArgumentError(f"data is not Base64: {exc}") from None
     if len(raw) % 8:
-        raise ValueError(f"data holds {len(raw)} bytes, not whole 8-byte numbers")
+        raise ArgumentError(f"data holds {len(raw)} bytes, not whole 8-byte numbers")
     data = array("d")
     data.frombytes(raw)
     if sys.byteorder != "little":
@@ -277,17 +278,17 @@ def pair(
     to the earlier). Unmatched reasons: ``no_reading_in_window``, ``no_reading_within_tolerance``.
     """
     if anchor not in ("start", "end"):
-        raise ValueError(f"anchor must be 'start' or 'end', got {anchor!r}")
+        raise ArgumentError(f"anchor must be 'start' or 'end', got {anchor!r}")
     window = ref.window if ref.window is not None else default_window
     if window is None:
         if not tolerance >= 0:
-            raise ValueError(f"tolerance must be >= 0 seconds, got {tolerance!r}")
+            raise ArgumentError(f"tolerance must be >= 0 seconds, got {tolerance!r}")
         hit = buffer.nearest(ref.t, tolerance)
         if hit is None:
             return Unmatched("no_reading_within_tolerance")
         return Paired(tuple(hit[0]), hit[1], 1)
     if not window > 0:
-        raise ValueError(f"window must be > 0 seconds, got {window!r}")
+        raise ArgumentError(f"window must be > 0 seconds, got {window!r}")
     start, end = (ref.t - window, ref.t) if anchor == "end" else (ref.t, ref.t + window)
     mean = buffer.window_mean(start, end)
     if mean is None:

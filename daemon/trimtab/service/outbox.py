@@ -37,6 +37,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from trimtab.errors import ArgumentError, StateError
 from trimtab.logs import get_logger
 
 __all__ = ["MARK_NAME", "Mark", "Outbox", "OutboxMark", "PublishResult", "record_key",
@@ -171,7 +172,7 @@ class Outbox:
     def __init__(self, window: int, *, keep: int = DEFAULT_KEEP,
                  clock: Callable[[], float] = time.monotonic) -> None:
         if window < 1:
-            raise ValueError(f"window must be at least 1, not {window}")
+            raise ArgumentError(f"window must be at least 1, not {window}")
         self.window = window
         self._keep = keep
         self._clock = clock
@@ -227,7 +228,7 @@ class Outbox:
     def reset(self, generation: int) -> None:
         """Start numbering the values of a new journal generation (only when drained)."""
         if self._unsent or self._inflight:
-            raise RuntimeError("outbox reset while values are pending")
+            raise StateError("outbox reset while values are pending")
         self.generation = generation
         self._next_seq = 0
         self._done = 0

@@ -33,7 +33,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from trimtab.errors import StateError
+from trimtab.errors import ArgumentError, StateError
 from trimtab.logs import get_logger
 from trimtab.store.journal import FILE_MODE, fsync_directory
 
@@ -80,41 +80,44 @@ def encode_checkpoint(state: Mapping[str, Any], generation: int) -> bytes:
 
 
 def decode_checkpoint(data: bytes, generation: int) -> dict[str, Any]:
-    """The state in checkpoint bytes ``data``; ``ValueError`` saying what is wrong with them."""
+    """The state in checkpoint bytes ``data``; ``StateError`` saying what is wrong with them."""
     if not data:
-        raise ValueError("empty file")
+        raise StateError("empty file")
     end = data.find(b"\n")
     if end == -1:
-        raise ValueError(f"no header line ({len(data)} bytes, no newline)")
+        raise StateError(f"no header line ({len(data)} bytes, no newline)")
     try:
         header = json.loads(data[:end])
     except ValueError as exc:
-        raise ValueError(f"header (line 1) is not JSON: {exc}") from None
+        raise StateError(f"header (line 1) is not JSON: {exc}") from None
     if not isinstance(header, dict) or header.get("format") != FORMAT:
-        raise ValueError(f"line 1 is not a {FORMAT} header")
+        raise StateError(f"line 1 is not a {FORMAT} header")
     if header.get("version") != VERSION:
-        raise ValueError(f"unsupported version {header.get('version')!r} (reads {VERSION})")
+        raise StateError(f"unsupported version {header.get('version')!r} (reads {VERSION})")
     if header.get("generation") != generation:
-        raise ValueError(
+        raise StateError(
             f"header says generation {header.get('generation')!r}, file name says {generation}"
         )
     expected = header.get("bytes")
     digest = header.get("sha256")
     if not isinstance(expected, int) or not isinstance(digest, str):
-        raise ValueError("header lacks 'bytes' or 'sha256'")
+        raise StateError("header lacks 'bytes' or 'sha256'")
     body = data[end + 1 :]
     if len(body) != expected + 1 or not body.endswith(b"\n"):
-        raise ValueError(
+        raise StateError(
             f"state (line 2, byte offset {end + 1}) is {max(len(body) - 1, 0)} bytes, "
             f"header says {expected}: truncated or extended"
         )
     body = body[:-1]
     actual = hashlib.sha256(body).hexdigest()
     if actual != digest:
-        raise ValueError(f"sha256 mismatch: header {digest[:16]}…, content {actual[:16]}…")
-    state = json.loads(body)
+        raise StateError(f"sha256 mismatch: header {digest[:16]}…, content {actual[:16]}…")
+    try:
+        state = json.loads(body)
+    except ValueError as exc:
+        raise StateError(f"state (line 2) is not JSON: {exc}") from None
     if not isinstance(state, dict):
-        raise ValueError(f"state (line 2) is a {type(state).__name__}, not an object")
+        raise StateError(f"state (line 2) is a {type(state).__name__}, not an object")
     return state
 
 
@@ -123,7 +126,7 @@ class CheckpointStore:
 
     def __init__(self, directory: Path, keep: int = 2) -> None:
         if keep < 1:
-            raise ValueError(f"keep must be at least 1, not {keep}")
+            raise ArgumentError(f"keep must be at least 1, not {keep}")
         self._dir = Path(directory)
         self._keep = keep
 
@@ -158,7 +161,7 @@ class CheckpointStore:
         ``generation`` must be newer than every existing one. Returns the file written.
         """
         if generation < 0:
-            raise ValueError(f"generation must be >= 0, not {generation}")
+            raise ArgumentError(f"generation must be >= 0, not {generation}")
         existing = self.generations()
         if existing and generation <= existing[-1]:
             raise StateError(
@@ -215,7 +218,7 @@ class CheckpointStore:
             raise StateError(f"checkpoint {path}: cannot read: {exc}") from exc
         try:
             return decode_checkpoint(data, generation)
-        except ValueError as exc:
+        except StateError as exc:
             raise StateError(f"checkpoint {path}: {exc}") from None
 
     def load_detailed(self) -> LoadedCheckpoint | None:

@@ -36,7 +36,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Literal
 
-from trimtab.errors import StateError
+from trimtab.errors import ArgumentError, StateError
 from trimtab.logs import get_logger
 
 __all__ = ["Durability", "Journal", "JournalTail", "encode_record", "read_journal"]
@@ -177,7 +177,7 @@ class Journal:
         before it raises ``StateError``.
         """
         if durability not in ("fsync", "flush"):
-            raise ValueError(f"durability must be 'fsync' or 'flush', not {durability!r}")
+            raise ArgumentError(f"durability must be 'fsync' or 'flush', not {durability!r}")
         path = Path(path)
         flags = os.O_WRONLY | os.O_APPEND | os.O_CLOEXEC
         created = False

@@ -73,7 +73,7 @@ def load_model_file(path: str | os.PathLike[str]) -> tuple[RidgeModel, dict[str,
         doc = json.loads(text, parse_constant=_no_constant)
     except json.JSONDecodeError as exc:
         raise DataError(f"{where}:{exc.lineno}: not valid JSON ({exc.msg})") from exc
-    except ValueError as exc:
+    except (DataError, ValueError) as exc:  # a refused constant, or digits past the limit
         raise DataError(f"{where}: {exc}") from exc
     return document_model(doc, where), doc
 
@@ -103,4 +103,4 @@ def document_model(doc: Any, where: str = "model file") -> RidgeModel:
 
 
 def _no_constant(name: str) -> Any:
-    raise ValueError(f"{name} is not allowed in a model file")
+    raise DataError(f"{name} is not allowed in a model file")

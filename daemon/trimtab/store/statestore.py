@@ -37,7 +37,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from trimtab.errors import StateError
+from trimtab.errors import ArgumentError, StateError
 from trimtab.logs import get_logger
 from trimtab.store.checkpoint import CheckpointStore
 from trimtab.store.journal import FILE_MODE, Durability, Journal, read_journal
@@ -91,7 +91,7 @@ class StateStore:
     def __init__(self, directory: Path, *, durability: Durability = "fsync", keep: int = 2,
                  validate: Callable[[Mapping[str, Any]], object] | None = None) -> None:
         if durability not in ("fsync", "flush"):
-            raise ValueError(f"durability must be 'fsync' or 'flush', not {durability!r}")
+            raise ArgumentError(f"durability must be 'fsync' or 'flush', not {durability!r}")
         self._dir = Path(directory)
         self._durability: Durability = durability
         self._checkpoints = CheckpointStore(self._dir, keep=keep)

@@ -14,7 +14,7 @@ from collections.abc import Mapping
 from datetime import datetime
 from typing import Any
 
-from trimtab.errors import DecodeError
+from trimtab.errors import ArgumentError, DecodeError, EncodeError
 from trimtab.messages import Corrected, Reading
 from trimtab.wire.topics import validate_sensor_id
 
@@ -182,7 +182,7 @@ def corrected_to_dict(c: Corrected) -> dict[str, object]:
     """The flat form of a corrected value; ``ValueError`` if a number is not finite."""
     for name in ("t", "value", "raw", "band"):
         if not math.isfinite(getattr(c, name)):
-            raise ValueError(f"corrected {name} for {c.sensor!r} is not finite; not encodable")
+            raise EncodeError(f"corrected {name} for {c.sensor!r} is not finite; not encodable")
     return {
         "t": float(c.t), "sensor": c.sensor, "value": float(c.value), "raw": float(c.raw),
         "band": float(c.band), "flags": list(c.flags), "updates": int(c.updates),
@@ -251,22 +251,22 @@ def _sensor_field(x: object) -> str:
 def check_names(names: list[str], what: str, pattern: re.Pattern[str] | None = None) -> None:
     for name in names:
         if not isinstance(name, str) or not name:
-            raise ValueError(f"{what}: every name must be a non-empty string, got {name!r}")
+            raise ArgumentError(f"{what}: every name must be a non-empty string, got {name!r}")
         if pattern is not None and pattern.fullmatch(name) is None:
-            raise ValueError(f"{what}: {name!r} must match {pattern.pattern}")
+            raise ArgumentError(f"{what}: {name!r} must match {pattern.pattern}")
     if len(set(names)) != len(names):
-        raise ValueError(f"{what}: names must be distinct, got {names}")
+        raise ArgumentError(f"{what}: names must be distinct, got {names}")
 
 
 def input_of(r: Reading, name: str) -> float:
     try:
         return float(r.inputs[name])
     except KeyError:
-        raise ValueError(f"reading of {r.sensor!r} has no input {name!r}") from None
+        raise EncodeError(f"reading of {r.sensor!r} has no input {name!r}") from None
 
 
 def check_inputs(covariates: Mapping[str, str], max_bytes: int) -> dict[str, str]:
     check_names(["raw", *covariates], "covariate input names (and 'raw')")
     if isinstance(max_bytes, bool) or not isinstance(max_bytes, int) or max_bytes < 2:
-        raise ValueError(f"max_bytes must be an integer >= 2, got {max_bytes!r}")
+        raise ArgumentError(f"max_bytes must be an integer >= 2, got {max_bytes!r}")
     return dict(covariates)

@@ -8,7 +8,7 @@ import re
 from collections.abc import Mapping
 from dataclasses import dataclass
 
-from trimtab.errors import DecodeError
+from trimtab.errors import DecodeError, EncodeError
 from trimtab.messages import Corrected, Reading, Reference
 from trimtab.wire.jsonfields import (
     CORRECTED_FIELDS,
@@ -236,7 +236,8 @@ class SenmlCodec:
 
     def _pack(self, t: float, sensor: str, records: list[tuple[str, object]]) -> bytes:
         if not t >= _SENML_RELATIVE:
-            raise ValueError(f"time {t!r} of {sensor!r} is below 2**28: SenML reads it as relative")
+            raise EncodeError(f"time {t!r} of {sensor!r} is below 2**28: SenML reads it as "
+                              "relative")
         pack: list[dict[str, object]] = [
             {"n": name, "vs" if isinstance(v, str) else "v": v} for name, v in records
         ]
@@ -261,7 +262,7 @@ class SenmlCodec:
         flat = corrected_to_dict(c)
         for flag in c.flags:
             if FLAG.fullmatch(flag) is None:
-                raise ValueError(f"flag {flag!r} of {c.sensor!r} is not a snake_case word")
+                raise EncodeError(f"flag {flag!r} of {c.sensor!r} is not a snake_case word")
         fields = ("value", "raw", "band")
         records: list[tuple[str, object]] = [(f, flat[f]) for f in fields]
         records += [("flags", ",".join(c.flags)), ("updates", flat["updates"])]

@@ -20,7 +20,7 @@ from collections.abc import Callable, Iterable, Iterator
 from pathlib import Path
 from typing import TypeVar
 
-from trimtab.errors import DataError, DecodeError
+from trimtab.errors import DataError, DecodeError, EncodeError
 from trimtab.messages import Corrected, Reading, Reference
 from trimtab.wire import codec
 from trimtab.wire.jsonfields import (
@@ -120,7 +120,7 @@ def decode_event(line: str) -> Reading | Reference:
 def _finite(value: float, what: str) -> float:
     value = float(value)
     if not math.isfinite(value):
-        raise ValueError(f"{what} is {value}; stream files hold finite numbers only")
+        raise EncodeError(f"{what} is {value}; stream files hold finite numbers only")
     return value
 
 

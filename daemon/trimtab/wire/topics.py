@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import re
 
-from trimtab.errors import DecodeError
+from trimtab.errors import ArgumentError, DecodeError
 
 __all__ = ["PLACEHOLDER", "SENSOR_ID_PATTERN", "TopicTemplate", "validate_sensor_id"]
 
@@ -68,31 +68,31 @@ class TopicTemplate:
 
     def __init__(self, template: str) -> None:
         if not isinstance(template, str) or not template:
-            raise ValueError("topic template must be a non-empty string")
+            raise ArgumentError("topic template must be a non-empty string")
         if len(template.encode("utf-8", "surrogatepass")) > _MAX_TOPIC_BYTES:
-            raise ValueError(f"topic template is longer than {_MAX_TOPIC_BYTES} bytes")
+            raise ArgumentError(f"topic template is longer than {_MAX_TOPIC_BYTES} bytes")
         if "\x00" in template:
-            raise ValueError(f"topic template {template!r} contains a NUL character")
+            raise ArgumentError(f"topic template {template!r} contains a NUL character")
         if "+" in template or "#" in template:
-            raise ValueError(
+            raise ArgumentError(
                 f"topic template {template!r} must not contain the wildcards '+' or '#'; "
                 f"write {PLACEHOLDER} where the sensor id goes"
             )
         if template.startswith("$"):
-            raise ValueError(
+            raise ArgumentError(
                 f"topic template {template!r} must not start with '$' (broker-internal "
                 "topics and shared subscriptions cannot carry per-sensor state)"
             )
         levels = template.split("/")
         found = [i for i, level in enumerate(levels) if level == PLACEHOLDER]
         if len(found) != 1 or template.count(PLACEHOLDER) != 1:
-            raise ValueError(
+            raise ArgumentError(
                 f"topic template {template!r} must contain {PLACEHOLDER} exactly once, "
                 "as a whole level between '/' separators"
             )
         others = [level for i, level in enumerate(levels) if i != found[0]]
         if any("{" in level or "}" in level for level in others):
-            raise ValueError(
+            raise ArgumentError(
                 f"topic template {template!r} has braces outside the {PLACEHOLDER} level"
             )
         self.template = template
