@@ -52,6 +52,9 @@ __all__ = [
 ]
 
 INPUT_NAME_PATTERN = r"^[a-z][a-z0-9_]{0,31}$"
+ALLOWED_MEMO = 100_000
+"""Sensor ids whose "served here?" answer a config remembers (the answer never changes for one
+config; a reload makes a new config)."""
 
 
 def _sensor_id(value: str) -> str:
@@ -263,6 +266,8 @@ class SensorsSettings(Section):
     _regex: re.Pattern[str] | None = PrivateAttr(None)
     _resolved: dict[str, SensorSettings] = PrivateAttr(default_factory=dict)
     _targets: dict[str, tuple[str, ...]] = PrivateAttr(default_factory=dict)
+    _served: dict[str, bool] = PrivateAttr(default_factory=dict)
+    """:meth:`allowed`'s answers, asked for every message; at most ``ALLOWED_MEMO`` of them."""
 
     @field_validator("pattern")
     @classmethod
@@ -279,6 +284,15 @@ class SensorsSettings(Section):
 
         ``exclude`` and ``incoming`` win over the pattern; ids are never in either.
         """
+        known = self._served.get(sensor_id)
+        if known is not None:
+            return known
+        answer = self._allowed(sensor_id)
+        if len(self._served) < ALLOWED_MEMO:  # bounded: hostile ids cannot grow it
+            self._served[sensor_id] = answer
+        return answer
+
+    def _allowed(self, sensor_id: str) -> bool:
         if sensor_id in self.ids:
             return True
         if not self.matched(sensor_id) or sensor_id in self.exclude or sensor_id in self.incoming:

@@ -555,6 +555,8 @@ class Service:
                     self.handle_batch(batch)
                 else:
                     self.outbox.pump()
+            # one wake-up for everything this turn queued: the batch's acks and values
+            self.transport.wake()
             self._write_mark()
             now = time.monotonic()
             if not ready and self.transport.subscribed.is_set():

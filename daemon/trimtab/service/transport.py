@@ -9,12 +9,21 @@ but not yet handled when the process died is delivered again.
 The network loop runs in one thread of ours (not ``loop_start``) so that reconnection uses
 capped exponential backoff with jitter, reset after a successful connect. Callbacks run on
 that thread: they hand messages on and return, and never raise.
+
+The loop drives paho through its external-loop calls (``loop_read``, ``loop_write``,
+``loop_misc`` around our own ``select``), never ``loop()``: ``loop()`` creates paho's wake-up
+socket pair, and then every publish and acknowledgement made on the service's thread writes a
+byte into it and wakes this thread once per packet. Instead the service queues a whole batch's
+acknowledgements and values and calls :meth:`Transport.wake` once; the loop then writes them
+all. A select timeout of ``POLL`` bounds the delay of anything queued without a wake-up.
 """
 
 from __future__ import annotations
 
+import contextlib
 import os
 import random
+import select
 import socket
 import ssl
 import threading
@@ -38,6 +47,9 @@ if TYPE_CHECKING:
     from trimtab.config import Config
 
 log = get_logger("trimtab.transport")
+
+POLL = 0.05
+"""Seconds the network loop waits in select at most (keepalive checks, the stop flag)."""
 
 RECEIVE_MAXIMUM = 1000
 """Unacknowledged QoS 1 messages the broker may push to us; well below the service's queue."""
@@ -139,6 +151,9 @@ class Transport:
         self._thread: threading.Thread | None = None
         self._backoff = Backoff()
         self._sub_mids: set[int] = set()
+        self._wake_r: socket.socket | None = None
+        self._wake_w: socket.socket | None = None
+        """The service's wake-up pair, made by :meth:`start` and closed by :meth:`stop`."""
         self._client = self._make_client()
 
     # -- set-up --------------------------------------------------------------------------------
@@ -312,7 +327,7 @@ class Transport:
                 self.reconnects += 1
             first = False
             while not self._stop.is_set():
-                rc = self._client.loop(timeout=0.05)
+                rc = self._step(POLL)
                 if rc != MQTTErrorCode.MQTT_ERR_SUCCESS:
                     self.connected.clear()
                     self.subscribed.clear()
@@ -320,8 +335,47 @@ class Transport:
             if not self._stop.is_set():
                 self._stop.wait(self._backoff.next())
 
+    def _step(self, timeout: float) -> MQTTErrorCode:
+        """One turn of the network loop: wait for the socket or a wake-up, read, write, tick."""
+        client = self._client
+        sock = client.socket()
+        if sock is None:
+            return MQTTErrorCode.MQTT_ERR_NO_CONN
+        # Bytes TLS has already decrypted do not show in select: read them without waiting.
+        buffered = sock.pending() if isinstance(sock, ssl.SSLSocket) else 0
+        writes = [sock] if client.want_write() else []
+        waits = [sock] if self._wake_r is None else [sock, self._wake_r]
+        try:
+            readable, _, _ = select.select(waits, writes, [], 0.0 if buffered else timeout)
+        except (OSError, ValueError, TypeError):  # the socket was closed under us
+            return MQTTErrorCode.MQTT_ERR_CONN_LOST
+        if self._wake_r is not None and self._wake_r in readable:
+            with contextlib.suppress(BlockingIOError):
+                while self._wake_r.recv(4096):
+                    pass
+        if sock in readable or buffered:
+            rc = client.loop_read()
+            if rc != MQTTErrorCode.MQTT_ERR_SUCCESS:
+                return rc
+        if client.want_write():
+            rc = client.loop_write()
+            if rc != MQTTErrorCode.MQTT_ERR_SUCCESS:
+                return rc
+        return client.loop_misc()
+
+    def wake(self) -> None:
+        """Have the network thread write what the service queued (thread-safe, never waits)."""
+        wake = self._wake_w
+        if wake is None or not self._client.want_write():
+            return
+        with contextlib.suppress(OSError):  # already woken (the pair is full), or closing
+            wake.send(b"\0")
+
     def start(self) -> None:
         """Start the network thread; connecting happens there, with retries."""
+        self._wake_r, self._wake_w = socket.socketpair()
+        self._wake_r.setblocking(False)
+        self._wake_w.setblocking(False)
         self._thread = threading.Thread(target=self._run, name="trimtab-mqtt", daemon=True)
         self._thread.start()
 
@@ -333,14 +387,17 @@ class Transport:
 
     def publish(self, topic: str, payload: bytes, qos: int = 0,
                 retain: bool = False) -> mqtt.MQTTMessageInfo:
-        """Queue a publish (thread-safe); never waits for the broker."""
-        return self._client.publish(topic, payload, qos=qos, retain=retain)
+        """Queue a publish and wake the network thread (thread-safe); never waits."""
+        info = self._client.publish(topic, payload, qos=qos, retain=retain)
+        self.wake()
+        return info
 
     def publish_value(self, topic: str, payload: bytes, qos: int) -> PublishResult:
         """Hand one corrected value to the client (thread-safe): its message id, or why not.
 
         At QoS ≥ 1 paho keeps a message made while disconnected and sends it after the next
         connect, so that counts as held; at QoS 0 it would be lost, so it is retried instead.
+        It is written at the next :meth:`wake` (or within ``POLL``).
         """
         try:
             info = self._client.publish(topic, payload, qos=qos)
@@ -353,7 +410,8 @@ class Transport:
         return PublishResult(None, mqtt.error_string(info.rc), retry=True)
 
     def ack(self, mid: int, qos: int) -> None:
-        """Acknowledge a QoS ≥ 1 message once it is journaled and processed."""
+        """Acknowledge a QoS ≥ 1 message once it is journaled and processed (sent at the next
+        :meth:`wake`, or within ``POLL``)."""
         if qos > 0:
             self._client.ack(mid, qos)
 
@@ -374,6 +432,10 @@ class Transport:
             self._client.loop(timeout=0.1)
         except (OSError, ValueError):
             pass
+        for end in (self._wake_r, self._wake_w):
+            if end is not None:
+                end.close()
+        self._wake_r = self._wake_w = None
 
 
 def endpoint_of(cfg: Config) -> Endpoint:
