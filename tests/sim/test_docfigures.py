@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import re
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -18,6 +19,7 @@ from trimtab.config.tree import MetricsSettings
 from trimtab.service.metrics import Metrics
 from trimtab_sim import docfigures
 from trimtab_sim.docfigures import block, markers, replace_block
+from trimtab_sim.scenario import Scenario
 
 ROOT = Path(__file__).resolve().parents[2]
 PAGES = [ROOT / "README.md", ROOT / "DEVELOPERS.md", ROOT / "config" / "README.md",
@@ -86,6 +88,49 @@ class TestHandWrittenReference:
         text = (ROOT / "config" / "README.md").read_text(encoding="utf-8")
         generated = {path for _, path, *_ in docfigures.config_rows()}
         assert _config_keys_listed(text) == generated
+
+
+def _scenario_keys() -> set[str]:
+    """Every leaf key of the scenario schema, dotted (a reference's periods as one key)."""
+    schema = Scenario.model_json_schema()
+    defs = schema["$defs"]
+
+    def resolve(s: dict[str, Any]) -> dict[str, Any]:
+        refs = [o for o in s.get("anyOf", ()) if "$ref" in o]
+        s = refs[0] if refs else s
+        return dict(defs[s["$ref"].rsplit("/", 1)[-1]]) if "$ref" in s else s
+
+    def walk(node: dict[str, Any], prefix: str) -> set[str]:
+        out: set[str] = set()
+        for name, sub in resolve(node)["properties"].items():
+            path = f"{prefix}.{name}" if prefix else name
+            r = resolve(sub)
+            if path == "references.periods":
+                out.add(path)
+            elif "properties" in r:
+                out |= walk(r, path)
+            elif r.get("type") == "array" and "$ref" in r.get("items", {}):
+                out |= walk(r["items"], path)
+            else:
+                out.add(path)
+        return out
+
+    return walk(schema, "")
+
+
+def test_scenario_table_lists_exactly_the_scenario_keys() -> None:
+    """simulator/README.md's scenario-file table names every key the scenario model has."""
+    text = (ROOT / "simulator" / "README.md").read_text(encoding="utf-8")
+    section = text.split("## Scenario files")[1].split("\n## ")[0]
+    documented: set[str] = set()
+    for line in section.splitlines():
+        if not line.startswith("| `"):
+            continue
+        cell = line.split("|")[1]
+        table = re.match(r"\s*`\[+([\w.]+)\]+`", cell)
+        names = re.findall(r"`([a-z_]+)`", cell[table.end():] if table else cell)
+        documented |= {f"{table.group(1)}.{n}" if table else n for n in names}
+    assert documented == _scenario_keys()
 
 
 _FENCE = re.compile(r"^```.*?^```", re.MULTILINE | re.DOTALL)
