@@ -83,6 +83,18 @@ class TestHandWrittenReference:
                   for f in Metrics(MetricsSettings()).families()}
         assert documented == served
 
+    @pytest.mark.parametrize("page", PAGES, ids=lambda p: str(p.relative_to(ROOT)))
+    def test_every_config_key_named_in_prose_exists(self, page: Path) -> None:
+        """A `section.key` the docs name is a key (or table) of the config tree."""
+        keys = {path for _, path, *_ in docfigures.config_rows()}
+        tables = {k.rsplit(".", i)[0] for k in keys for i in range(1, 4)}
+        refused = {"broker.password"}  # named as what the config refuses
+        named = re.findall(r"`((?:broker|topics|payload|sensors|learning|pairing|output|state"
+                           r"|logging|status|metrics)(?:\.[a-z_\[\]]+)+)`",
+                           page.read_text(encoding="utf-8"))
+        assert [k for k in named if not k.endswith(".py")
+                and k not in keys | tables | refused] == []
+
     def test_config_reference_lists_only_keys_the_tree_has(self) -> None:
         """Every key row of config/README.md is a key the config tree generates, and back."""
         text = (ROOT / "config" / "README.md").read_text(encoding="utf-8")
