@@ -22,7 +22,8 @@ test: $(STAMP)
 
 ## make soak: set up, then run the reliability scenarios at full scale and print their figures
 ## (20 kills, 5 broker restarts, 100,000 fuzz inputs per decoder, 100,000 malformed messages,
-## 60 s of overload; about half an hour). CI runs the same tests at a small scale.
+## 60 s of overload; tens of minutes, and it prints how long it took). CI runs the same tests
+## at a small scale.
 soak: $(STAMP)
 	$(BIN)/python -m trimtab_sim.soak --scale full
 

@@ -254,11 +254,11 @@ def _leaf_keys(schema: dict[str, Any]) -> set[str]:
     return walk(schema, "")
 
 
-class TestReadme:
-    def test_readme_lists_exactly_the_schema_keys(self) -> None:
-        """Every leaf key of the schema has a README row in the config section, and no more."""
-        text = (ROOT / "README.md").read_text(encoding="utf-8")
-        section = text.split("<!-- section:config -->")[1].split("<!-- /section:config -->")[0]
+class TestReference:
+    def test_reference_lists_exactly_the_schema_keys(self) -> None:
+        """Every leaf key of the schema has a row in config/README.md's key tables, and no more."""
+        text = (ROOT / "config" / "README.md").read_text(encoding="utf-8")
+        section = text.split("<!-- config:keys -->")[1].split("<!-- /config:keys -->")[0]
         rows = set(re.findall(r"^\| `([^`]+)` \|", section, flags=re.MULTILINE))
         assert rows == _leaf_keys(Config.model_json_schema(by_alias=True))
 
