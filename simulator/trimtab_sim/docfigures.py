@@ -64,7 +64,7 @@ def replace_block(text: str, name: str, body: str) -> str:
 
 
 def _schema() -> dict[str, Any]:
-    from trimtab.config.tree import Config
+    from trimtab.config import Config
 
     return Config.model_json_schema(by_alias=True)
 
@@ -104,7 +104,7 @@ def _default(s: dict[str, Any], required: bool) -> str:
 
 def config_rows() -> list[tuple[str, str, str, str, str]]:
     """(section, dotted key, type, default, meaning) for every leaf key of the config tree."""
-    from trimtab.config.tree import RELOADABLE, SERVING
+    from trimtab.config import RELOADABLE, SERVING
 
     schema = _schema()
     defs = schema["$defs"]
@@ -173,7 +173,7 @@ def _demo_config(tmp: Path) -> Path:
 
 def scenario_rows() -> list[tuple[str, str, str, float, float, float, float]]:
     """(name, unit, description, raw, corrected, oracle RMSE, required improvement) each."""
-    from trimtab.config.tree import load_config
+    from trimtab.config import load_config
     from trimtab.engine.wiring import make_engine
     from trimtab.wire.streamfile import read_events
     from trimtab_sim.generate import write_stream

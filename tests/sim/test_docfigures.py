@@ -15,7 +15,7 @@ from typing import Any
 
 import pytest
 
-from trimtab.config.tree import MetricsSettings
+from trimtab.config import MetricsSettings
 from trimtab.service.metrics import Metrics
 from trimtab_sim import docfigures
 from trimtab_sim.docfigures import block, markers, replace_block
