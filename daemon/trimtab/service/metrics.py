@@ -14,9 +14,9 @@ always, pattern-matched ones up to ``metrics.max_sensor_labels`` in the order th
 others are counted in ``trimtab_sensor_labels_overflow``. Label sets are never removed while the
 process runs, so a series does not flicker.
 
-Families (see the README's operations section for the full table):
+Families (config/README.md lists them all, with their labels):
 
-- ``trimtab_messages_received_total{outcome}``: processed, rejected, foreign, held, queue_full
+- ``trimtab_messages_received_total{outcome}``: processed, rejected, foreign, held, redelivered
 - ``trimtab_messages_rejected_total{reason}``: decode failures by reason
 - ``trimtab_messages_published_total{outcome}``: sent, delivered, deferred, failed, refused
   (corrected values, from the service's outbox)
