@@ -1,9 +1,9 @@
 """The MQTT transport: a paho-mqtt 2.x client with a persistent session and its own network loop.
 
 What "nothing lost" takes with paho 2.x (config/README.md, "Nothing lost"): a fixed client id;
-on MQTT 5 ``clean_start=False`` and a Session Expiry Interval > 0 on CONNECT (absent means 0); on 3.1.1
-``clean_session=False``; QoS 1 subscriptions; and manual acknowledgement, so a message is
-acknowledged only after the service has journaled and processed it — one that was received
+on MQTT 5 ``clean_start=False`` and a Session Expiry Interval > 0 on CONNECT (absent means 0);
+on 3.1.1 ``clean_session=False``; QoS 1 subscriptions; and manual acknowledgement, so a message
+is acknowledged only after the service has journaled and processed it — one that was received
 but not yet handled when the process died is delivered again.
 
 The network loop runs in one thread of ours (not ``loop_start``) so that reconnection uses
