@@ -41,9 +41,9 @@ from trimtab.service.outbox import (
     Outbox,
     OutboxMark,
     PublishResult,
-    stored_output,
     with_output,
 )
+from trimtab.service.recovery import recover_state
 from trimtab.service.shards import HeldFile, SubscriptionLedger, plan_subscriptions, release
 from trimtab.service.storage import StoragePause, storage_fault
 from trimtab.service.transport import Transport, endpoint_of
@@ -141,51 +141,14 @@ class Service:
 
     def recover(self) -> int:
         """Load the newest good checkpoint and re-feed the journal; returns records replayed."""
-        mark = self.mark.read()
-        rec = self.store.recover()
+        rec = recover_state(self.engine, self.store, self.mark.read(), self.outbox, self.codec,
+                            self.t_corrected.format)
         self._current_records = rec.current
-        self._check_journal_length(mark, rec.current, rec.torn_bytes)
-        if rec.state is not None:
-            self.engine.load_state(rec.state)
-        for record in rec.records:
-            outputs = self.engine.process(record_to_event(record))
-            stored = stored_output(record)
-            if stored is not None and outputs and \
-                    self.codec.encode_corrected(outputs[0]) != stored:
-                # The journaled value is the one promised; it is the one published again.
-                self.recovery_differs += 1
-        if self.recovery_differs:
-            log.warning("recovery_output_differs", values=self.recovery_differs,
-                        hint="the settings changed since they were journaled; the journaled "
-                        "values are published")
-        current = rec.records[len(rec.records) - rec.current:]
-        for record in rec.records[:len(rec.records) - rec.current]:
-            self.outbox.remember(record)
-        queued = self.outbox.restore(self.store.generation, current,
-                                     (mark.generation, mark.done), self.t_corrected.format)
-        log.info("state_recovered", generation=rec.generation, journal_records=len(rec.records),
-                 torn_bytes=rec.torn_bytes, sensors=len(self.engine.sensors()),
-                 outputs_to_publish=queued)
-        self._journal_records = len(rec.records)
+        self.journal_lost = rec.journal_lost
+        self.recovery_differs = rec.differs
+        self._journal_records = rec.records
         self._journal_since = time.monotonic() if rec.records else None
-        return len(rec.records)
-
-    def _check_journal_length(self, mark: Mark, records: int, torn: int) -> None:
-        """Say exactly what is missing when the journal is shorter than the mark saw it."""
-        if mark.generation != self.store.generation:
-            return
-        size = self.store.journal_size
-        lost_bytes = max(0, mark.journal_bytes - size)
-        lost_records = max(0, mark.journal_records - records)
-        if not (lost_bytes or lost_records):
-            return
-        self.journal_lost = {"bytes": lost_bytes, "records": lost_records}
-        log.error("journal_data_lost", path=str(self.store.journal_path(mark.generation)),
-                  offset=size, bytes_lost=lost_bytes, records_lost=lost_records,
-                  torn_bytes_cut=torn,
-                  hint="the journal ends before what this daemon had written to it (cut or "
-                  "lost in a power failure); counted from the outbox mark, so at least this "
-                  "much is gone")
+        return rec.records
 
     def release_held(self) -> int:
         """Feed held events of sensors served now (their state imported) first; returns how many.
