@@ -409,6 +409,6 @@ def endpoint_with_port(cfg: Config, port: int) -> Any:
     """The daemon's endpoint with another port (one where no broker listens)."""
     from dataclasses import replace
 
-    from trimtab.service.transport import endpoint_of
+    from trimtab.service.endpoint import endpoint_of
 
     return replace(endpoint_of(cfg), port=port)

@@ -26,6 +26,7 @@ from trimtab.engine.wiring import make_codec, make_engine, status_topic, topic_t
 from trimtab.errors import ConfigError, DecodeError, StateError
 from trimtab.logs import configure_logging, get_logger
 from trimtab.messages import Reading, Reference
+from trimtab.service.endpoint import endpoint_of
 from trimtab.service.intake import (
     BURST_QUIET,
     Inbound,
@@ -46,7 +47,7 @@ from trimtab.service.outbox import (
 from trimtab.service.recovery import recover_state
 from trimtab.service.shards import HeldFile, SubscriptionLedger, plan_subscriptions, release
 from trimtab.service.storage import StoragePause, storage_fault
-from trimtab.service.transport import Transport, endpoint_of
+from trimtab.service.transport import Transport
 from trimtab.store.records import event_to_record, record_to_event
 from trimtab.store.statestore import StateStore
 

@@ -11,7 +11,7 @@ import time
 from typing import TYPE_CHECKING
 
 from trimtab.logs import get_logger
-from trimtab.service.transport import Backoff
+from trimtab.service.endpoint import Backoff
 
 if TYPE_CHECKING:
     from trimtab.service.intake import Processed

@@ -21,15 +21,11 @@ all. A select timeout of ``POLL`` bounds the delay of anything queued without a 
 from __future__ import annotations
 
 import contextlib
-import os
-import random
 import select
 import socket
 import ssl
 import threading
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
-from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import paho.mqtt.client as mqtt
@@ -39,12 +35,13 @@ from paho.mqtt.properties import Properties
 from paho.mqtt.reasoncodes import ReasonCode
 from paho.mqtt.subscribeoptions import SubscribeOptions
 
-from trimtab.errors import ConfigError, TransportError
+from trimtab.errors import TransportError
 from trimtab.logs import get_logger
+from trimtab.service.endpoint import Backoff, Endpoint
 from trimtab.service.outbox import PublishResult
 
 if TYPE_CHECKING:
-    from trimtab.config import Config
+    pass
 
 log = get_logger("trimtab.transport")
 
@@ -60,61 +57,8 @@ PublishedHandler = Callable[[int, "str | None"], None]
 """Called on the network thread with (mid, refusal reason or None) for each PUBACK."""
 
 
-@dataclass(frozen=True, slots=True)
-class Endpoint:
-    """Where and how to connect; built from the config's ``[broker]`` section."""
-
-    host: str
-    port: int
-    client_id: str
-    protocol: str = "5"
-    keepalive: int = 30
-    session_expiry: int = 86400
-    username: str | None = None
-    password: str | None = field(default=None, repr=False)  # never in a log line or traceback
-    tls: bool = False
-    ca_file: str | None = None
-    cert_file: str | None = None
-    key_file: str | None = None
-    verify: bool = True
-
-
-def read_password(env: str | None, file: str | Path | None) -> str | None:
-    """The broker password from an environment variable or a file (never inline)."""
-    if env:
-        value = os.environ.get(env)
-        if value is None:
-            raise ConfigError(f"broker.password_env: environment variable {env} is not set")
-        return value
-    if file:
-        try:
-            return Path(file).read_text().rstrip("\r\n")
-        except OSError as exc:
-            raise ConfigError(f"broker.password_file: cannot read {file}: {exc.strerror}") from exc
-    return None
-
-
 def _write_from_network_thread(client: mqtt.Client, userdata: Any, sock: Any) -> None:
     """paho's "register for writing" hook: nothing to do, our loop selects for writing."""
-
-
-class Backoff:
-    """Capped exponential backoff with full jitter; reset after a successful connect."""
-
-    def __init__(self, first: float = 0.5, cap: float = 30.0, rng: random.Random | None = None):
-        self.first = first
-        self.cap = cap
-        self.attempt = 0
-        self._rng = rng or random.Random()
-
-    def next(self) -> float:
-        """The next delay: uniform in [first/2, min(cap, first·2^attempt)]."""
-        ceiling = min(self.cap, self.first * (2.0**self.attempt))
-        self.attempt += 1
-        return self._rng.uniform(self.first / 2.0, max(ceiling, self.first / 2.0))
-
-    def reset(self) -> None:
-        self.attempt = 0
 
 
 class Transport:
@@ -436,17 +380,3 @@ class Transport:
             if end is not None:
                 end.close()
         self._wake_r = self._wake_w = None
-
-
-def endpoint_of(cfg: Config) -> Endpoint:
-    """The transport endpoint the ``[broker]`` section describes."""
-    b = cfg.broker
-    tls = b.tls
-    return Endpoint(
-        host=b.host, port=b.port, client_id=b.client_id, protocol=b.protocol,
-        keepalive=b.keepalive, session_expiry=b.session_expiry, username=b.username,
-        password=read_password(b.password_env, b.password_file),
-        tls=tls.enabled, ca_file=None if tls.ca_file is None else str(tls.ca_file),
-        cert_file=None if tls.cert_file is None else str(tls.cert_file),
-        key_file=None if tls.key_file is None else str(tls.key_file), verify=tls.verify,
-    )
