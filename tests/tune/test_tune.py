@@ -48,9 +48,11 @@ from trimtab.tune.grid import (
     load_grid,
     search_settings,
 )
+from trimtab.tune.lanes import phi_block
+from trimtab.tune.run import tune_stream
+from trimtab.tune.scores import seq_add
 from trimtab.tune.trace import Trace, record
-from trimtab.tune.tuner import Tuner, TuneResult, tune_stream
-from trimtab.tune.vengine import _seq_add, phi_rows
+from trimtab.tune.tuner import Tuner, TuneResult
 from trimtab.wire.streamfile import read_events, write_events
 from trimtab_sim.generate import write_stream
 from trimtab_sim.scenario import parse_scenario
@@ -218,7 +220,7 @@ class TestVectorisedArithmetic:
         rng = np.random.default_rng(5)
         X = np.column_stack((rng.normal(30, 20, 300), rng.normal(12, 9, 300)))
         t = 1.7e9 + np.sort(rng.uniform(0, 40 * 86400.0, 300))
-        rows = phi_rows(model, X, t)
+        rows = np.column_stack(phi_block(model, X, t))
         for i in range(300):
             expected, _ = model.phi({"raw": float(X[i, 0]), "temp": float(X[i, 1])}, float(t[i]))
             assert rows[i].tolist() == expected
@@ -229,7 +231,7 @@ class TestVectorisedArithmetic:
         rng = np.random.default_rng(9)
         parts = rng.normal(0, 1, (3, 500)) * 10.0 ** rng.integers(-8, 8, (3, 500))
         acc = np.array([1.0, -2.0, 3e7])
-        got = _seq_add(acc, parts)
+        got = seq_add(acc, parts)
         for k in range(3):
             s = float(acc[k])
             for v in parts[k].tolist():
