@@ -28,7 +28,7 @@ from typing import Any
 
 from trimtab.model.ops import Ops, dot
 
-__all__ = ["SQRT_HALF_PI", "Step", "shrink_step", "standardise"]
+__all__ = ["SQRT_HALF_PI", "Step", "shrink_step", "standardise", "why_refused"]
 
 SQRT_HALF_PI = math.sqrt(math.pi / 2.0)
 
@@ -85,3 +85,18 @@ def shrink_step(ops: Ops, theta: Any, prior: Any, phi: Any, y: Any, alpha: Any, 
     spread = ops.where(spread == 0.0, obs, spread + spread_decay * (obs - spread))
     ok = (ops.isfinite(r) & (shrink > 0.0)) & (ops.isfinite(total) & ops.isfinite(spread))
     return r, new, spread, a, shrink, total, ok
+
+
+def why_refused(r: float, a: float, shrink: float, total: float, lam: float,
+                memory: float) -> str:
+    """Why one model's computed step may not be kept (its ``ok`` is false), in one line."""
+    if not math.isfinite(r):
+        # θ is always finite, so a non-finite r means a non-finite feature or an overflow
+        return f"residual {r} is not finite (a non-finite feature or overflow)"
+    if shrink <= 0.0:
+        return (f"shrink factor 1 − aλ/m = 1 − {a}·{lam}/{memory} = {shrink} "
+                "is not positive; lower the step size or λ")
+    if not math.isfinite(total):
+        # a non-finite weight makes the sum inf or nan (only absurd ~1e308 weights false-alarm)
+        return "update would make a weight non-finite; state left unchanged"
+    return "update would make the residual spread non-finite"

@@ -18,19 +18,16 @@ from numpy.typing import NDArray
 
 from trimtab.errors import DataError, ModelError
 from trimtab.model.batch import batch_cost, batch_gradient
-from trimtab.model.kernel import shrink_step, standardise
+from trimtab.model.kernel import shrink_step, standardise, why_refused
 from trimtab.model.ops import SCALAR, dot
-from trimtab.model.parts import parsed, shared
+from trimtab.model.parts import shared
 from trimtab.model.ranges import remap
-from trimtab.model.terms import Scaler, TermSpec, as_float, as_sequence, float_list
+from trimtab.model.state import finite as _finite
+from trimtab.model.state import model_arguments
+from trimtab.model.state import positive_or_none as _positive_or_none
+from trimtab.model.terms import Scaler, TermSpec, as_sequence
 
 __all__ = ["KEEP", "RidgeModel", "dot", "factory_prior", "shared"]
-_STATE_KEYS = frozenset(
-    {
-        "spec", "scaler", "origin", "lam", "memory", "prior", "penalise_intercept",
-        "huber_delta", "normalised", "clip", "theta", "spread", "spread_decay", "updates",
-    }
-)
 
 
 class _Keep(enum.Enum):
@@ -292,7 +289,7 @@ class RidgeModel:
             self._delta, self._normalised, self._penalise_intercept, self._spread,
             self._spread_decay)
         if not ok:
-            _refuse(r, a, shrink, total, self._lam, self._memory)
+            raise ModelError(why_refused(r, a, shrink, total, self._lam, self._memory))
         self._theta = theta
         self._spread = spread
         self._updates += 1
@@ -409,71 +406,10 @@ class RidgeModel:
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> RidgeModel:
         """Rebuild from :meth:`to_dict`'s form; DataError names the malformed key."""
-        if not isinstance(d, Mapping):
-            raise DataError("model: expected an object")
-        missing = sorted(_STATE_KEYS - set(d))
-        if missing:
-            raise DataError(f"model: missing key {missing[0]!r}")
-        extra = sorted(set(d) - _STATE_KEYS)
-        if extra:
-            raise DataError(f"model: unknown key {extra[0]!r}")
-        spec = parsed(d["spec"], TermSpec.from_dict)
-        scaler = parsed(d["scaler"], Scaler.from_dict)
-        kw: dict[str, Any] = {
-            name: as_float(d[name], f"model.{name}")
-            for name in ("origin", "lam", "memory", "spread", "spread_decay")
-        }
-        for name in ("huber_delta", "clip"):
-            kw[name] = None if d[name] is None else as_float(d[name], f"model.{name}")
-        for name in ("penalise_intercept", "normalised"):
-            if not isinstance(d[name], bool):
-                raise DataError(f"model.{name}: expected true or false")
-            kw[name] = d[name]
-        updates = d["updates"]
-        if isinstance(updates, bool) or not isinstance(updates, int) or updates < 0:
-            raise DataError(f"model.updates: expected an integer ≥ 0, got {updates!r}")
-        kw["updates"] = updates
-        kw["prior"] = float_list(d["prior"], "model.prior")
-        kw["theta"] = float_list(d["theta"], "model.theta")
+        spec, scaler, kw = model_arguments(d)
         try:
             model = cls(spec, scaler, **kw)
         except ModelError as exc:
             raise DataError(f"model: {exc}") from exc
         model._prior = shared(model._prior)  # equal across sensors of one configuration
         return model
-
-
-def _refuse(r: float, a: float, shrink: float, total: float, lam: float,
-            memory: float) -> None:
-    """Raise the ModelError that says why a computed step may not be kept."""
-    if not math.isfinite(r):
-        # θ is always finite, so a non-finite r means a non-finite feature or an overflow
-        raise ModelError(f"residual {r} is not finite (a non-finite feature or overflow)")
-    if shrink <= 0.0:
-        raise ModelError(
-            f"shrink factor 1 − aλ/m = 1 − {a}·{lam}/{memory} = {shrink} "
-            "is not positive; lower the step size or λ"
-        )
-    if not math.isfinite(total):
-        # a non-finite weight makes the sum inf or nan (only absurd ~1e308 weights false-alarm)
-        raise ModelError("update would make a weight non-finite; state left unchanged")
-    raise ModelError("update would make the residual spread non-finite")
-
-
-def _finite(value: float, name: str) -> float:
-    try:
-        f = float(value)
-    except (TypeError, ValueError):
-        raise ModelError(f"{name} = {value!r} is not a number") from None
-    if not math.isfinite(f):
-        raise ModelError(f"{name} = {f} is not finite")
-    return f
-
-
-def _positive_or_none(value: float | None, name: str) -> float | None:
-    if value is None:
-        return None
-    f = _finite(value, name)
-    if f <= 0.0:
-        raise ModelError(f"{name} = {f} must be > 0 (or unset)")
-    return f
