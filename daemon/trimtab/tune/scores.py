@@ -1,4 +1,4 @@
-"""Prequential scores of K candidates, summed in stream order.
+"""Prequential scores of K candidates, summed in stream order, and the scored candidates.
 
 Each sum is accumulated in the order of the stream (``np.add.accumulate`` is sequential by
 definition), so anyone can recompute it from a replay's output with a plain loop: per sensor
@@ -8,12 +8,17 @@ S = (…(0 + e_1²) + e_2²…), per part (tune, test) and per fold of the tune 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from typing import Literal
 
 import numpy as np
 from numpy.typing import NDArray
 
-__all__ = ["Score", "Tally", "seq_add"]
+from trimtab.tune.grid import Candidate
+
+__all__ = ["Against", "Outcome", "Score", "Tally", "TuneResult", "seq_add"]
+
+Against = Literal["truth", "references", "spans"]
 
 F64 = NDArray[np.float64]
 I64 = NDArray[np.int64]
@@ -102,3 +107,46 @@ class Tally:
             err = value[:, cols] - truth[cols][None, :]
             self.fold_out_sse[f] = seq_add(self.fold_out_sse[f], err * err)
             self.fold_out_n[f] += int(cols.sum())
+
+
+@dataclass(slots=True)
+class Outcome:
+    """One evaluated candidate: scores, guard tallies and stability margins."""
+
+    candidate: Candidate
+    tune: Score
+    test: Score
+    per_sensor: dict[str, tuple[Score, Score]]
+    rollbacks: int
+    gated: int
+    margin: float
+    """Smallest step-stability margin (bound / actual) of stability.py over the config's sensor
+    settings, evaluated at this candidate's α and λ (the largest it ever uses)."""
+    reached: float
+    """2 / the largest a·(λ/m + ‖φ‖²) of any step it took: how near the steps actually came."""
+    folds: list[Score] = field(default_factory=list)
+    """The tune part's score in each of its consecutive time blocks (rolling origin)."""
+
+    def fold_spread(self) -> tuple[float, float] | None:
+        """The smallest and largest fold RMSE, or None when no fold was scored."""
+        got = [s.rmse for s in self.folds if s.rmse is not None]
+        return (min(got), max(got)) if got else None
+
+
+@dataclass(slots=True)
+class TuneResult:
+    """The ranked outcomes (best first), the refused candidates and what the run covered."""
+
+    against: Against
+    split: float
+    split_t: float | None
+    outcomes: list[Outcome]
+    refused: list[Candidate]
+    events: int
+    complete: bool
+    sensors: list[str] = field(default_factory=list)
+
+    @property
+    def best(self) -> Outcome | None:
+        """The candidate with the lowest tune RMSE, if any was scored."""
+        return self.outcomes[0] if self.outcomes and self.outcomes[0].tune.n else None

@@ -31,7 +31,7 @@ from __future__ import annotations
 import copy
 import math
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Literal
 
 import numpy as np
@@ -45,57 +45,13 @@ from trimtab.model.stability import STEP_BOUND, step_check
 from trimtab.model.terms import Scaler
 from trimtab.tune.grid import Candidate
 from trimtab.tune.lanes import COUNTED, Lanes, ModelSettings, guard_lanes, phi_block, stack
-from trimtab.tune.scores import Score, Tally
+from trimtab.tune.scores import Against, Outcome, Score, Tally, TuneResult
 from trimtab.tune.trace import SensorTrace, Trace
 
 __all__ = ["Against", "Candidates", "Outcome", "Score", "TuneResult", "Tuner"]
 
-Against = Literal["truth", "references", "spans"]
 CHUNK = 4096
 """Most readings predicted in one block (bounds a block's K × B arrays)."""
-
-
-@dataclass(slots=True)
-class Outcome:
-    """One evaluated candidate: scores, guard tallies and stability margins."""
-
-    candidate: Candidate
-    tune: Score
-    test: Score
-    per_sensor: dict[str, tuple[Score, Score]]
-    rollbacks: int
-    gated: int
-    margin: float
-    """Smallest step-stability margin (bound / actual) of stability.py over the config's sensor
-    settings, evaluated at this candidate's α and λ (the largest it ever uses)."""
-    reached: float
-    """2 / the largest a·(λ/m + ‖φ‖²) of any step it took: how near the steps actually came."""
-    folds: list[Score] = field(default_factory=list)
-    """The tune part's score in each of its consecutive time blocks (rolling origin)."""
-
-    def fold_spread(self) -> tuple[float, float] | None:
-        """The smallest and largest fold RMSE, or None when no fold was scored."""
-        got = [s.rmse for s in self.folds if s.rmse is not None]
-        return (min(got), max(got)) if got else None
-
-
-@dataclass(slots=True)
-class TuneResult:
-    """The ranked outcomes (best first), the refused candidates and what the run covered."""
-
-    against: Against
-    split: float
-    split_t: float | None
-    outcomes: list[Outcome]
-    refused: list[Candidate]
-    events: int
-    complete: bool
-    sensors: list[str] = field(default_factory=list)
-
-    @property
-    def best(self) -> Outcome | None:
-        """The candidate with the lowest tune RMSE, if any was scored."""
-        return self.outcomes[0] if self.outcomes and self.outcomes[0].tune.n else None
 
 
 @dataclass(slots=True)
