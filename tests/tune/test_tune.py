@@ -49,7 +49,7 @@ from trimtab.tune.grid import (
     search_settings,
 )
 from trimtab.tune.lanes import phi_block
-from trimtab.tune.run import tune_stream
+from trimtab.tune.run import GroupedRun, tune_stream
 from trimtab.tune.scores import seq_add
 from trimtab.tune.trace import Trace, record
 from trimtab.tune.tuner import Tuner, TuneResult
@@ -172,6 +172,17 @@ def _replay(cfg: Config, stream: Path) -> tuple[dict[str, Any], str]:
     return json.loads(json.dumps(engine.state_dict())), out.getvalue()
 
 
+def _equals_replay(run: GroupedRun, cand: Candidate, stream: Path) -> dict[str, Any]:
+    """Assert a tuned candidate's state and tune/test scores are replay's; replay's state."""
+    assert cand.config is not None
+    state, out = _replay(cand.config, stream)
+    assert json.loads(json.dumps(run.engine_state(cand.index))) == state, cand.settings
+    o = next(o for o in run.result.outcomes if o.candidate.index == cand.index)
+    got = [(o.tune.sse, o.tune.total, o.tune.n), (o.test.sse, o.test.total, o.test.n)]
+    assert got == _replay_scores(stream, out, run.tuners[0].split_t)
+    return state
+
+
 @dataclass
 class Run:
     """A tuned stream shared by a module's tests."""
@@ -278,15 +289,9 @@ class TestEqualsReplay:
         assert all(c.valid for c in cands)
         run = tune_stream(perturbed.stream, cands, split=0.7)
         assert len(run.tuners) == 5  # fixed, and follow at 2 widths × 2 spans
-        by_index = {o.candidate.index: o for o in run.result.outcomes}
         seen: set[str] = set()
         for cand in cands[::3]:
-            assert cand.config is not None
-            state, out = _replay(cand.config, perturbed.stream)
-            assert json.loads(json.dumps(run.engine_state(cand.index))) == state, cand.settings
-            o = by_index[cand.index]
-            got = [(o.tune.sse, o.tune.total, o.tune.n), (o.test.sse, o.test.total, o.test.n)]
-            assert got == _replay_scores(perturbed.stream, out, run.tuners[0].split_t)
+            state = _equals_replay(run, cand, perturbed.stream)
             seen |= {k for k, v in state["counts"].items() if v}
         assert {"scaler_moved", "reference_rolled_back", "reference_level_shift"} <= seen
 
@@ -300,14 +305,8 @@ class TestEqualsReplay:
         assert len(cands) == 4 and all(c.valid for c in cands)
         run = tune_stream(perturbed.stream, cands, split=0.7)
         assert len(run.tuners) == 4
-        by_index = {o.candidate.index: o for o in run.result.outcomes}
         for cand in cands:
-            assert cand.config is not None
-            state, out = _replay(cand.config, perturbed.stream)
-            assert json.loads(json.dumps(run.engine_state(cand.index))) == state
-            o = by_index[cand.index]
-            got = [(o.tune.sse, o.tune.total, o.tune.n), (o.test.sse, o.test.total, o.test.n)]
-            assert got == _replay_scores(perturbed.stream, out, run.tuners[0].split_t)
+            _equals_replay(run, cand, perturbed.stream)
         names = {tuple(json.loads(json.dumps(run.engine_state(c.index)))["sensors"][
             "pm25-quay-01"]["model"]["spec"]["squares"]) for c in cands}
         assert names == {(), ("temp",)}
@@ -838,14 +837,8 @@ class TestEveryKeyEqualsReplay:
                                  include_current=False)
         assert len(cands) == 2 and all(c.valid for c in cands), [c.refused for c in cands]
         run = tune_stream(perturbed.stream, cands, split=0.7)
-        by_index = {o.candidate.index: o for o in run.result.outcomes}
         for cand in cands:
-            assert cand.config is not None
-            state, out = _replay(cand.config, perturbed.stream)
-            assert json.loads(json.dumps(run.engine_state(cand.index))) == state, cand.settings
-            o = by_index[cand.index]
-            got = [(o.tune.sse, o.tune.total, o.tune.n), (o.test.sse, o.test.total, o.test.n)]
-            assert got == _replay_scores(perturbed.stream, out, run.tuners[0].split_t)
+            _equals_replay(run, cand, perturbed.stream)
         # the variant's keys matter: without them the same candidate replays differently
         plain = parse_config(candidate_document(perturbed.base,
                                                 {k: cands[0].settings[k] for k in grid}))

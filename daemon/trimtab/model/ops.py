@@ -96,45 +96,20 @@ class ArrayOps:
 
     __slots__ = ()
 
-    @staticmethod
-    def where(c: Any, a: Any, b: Any) -> Any:
-        return np.where(c, a, b)
-
-    @staticmethod
-    def maximum(a: Any, b: Any) -> Any:
-        return np.maximum(a, b)
-
-    @staticmethod
-    def minimum(a: Any, b: Any) -> Any:
-        return np.minimum(a, b)
+    where: Callable[..., Any] = staticmethod(np.where)
+    maximum: Callable[..., Any] = staticmethod(np.maximum)
+    minimum: Callable[..., Any] = staticmethod(np.minimum)
+    absolute: Callable[..., Any] = staticmethod(np.abs)
+    isfinite: Callable[..., Any] = staticmethod(np.isfinite)
+    isnan: Callable[..., Any] = staticmethod(np.isnan)
+    isinf: Callable[..., Any] = staticmethod(np.isinf)
+    copysign: Callable[..., Any] = staticmethod(np.copysign)
+    not_: Callable[..., Any] = staticmethod(np.logical_not)
 
     @staticmethod
     def clip(x: Any, d: Any) -> Any:
+        """``maximum(−d, minimum(d, x))``."""
         return np.maximum(-d, np.minimum(d, x))
-
-    @staticmethod
-    def absolute(a: Any) -> Any:
-        return np.abs(a)
-
-    @staticmethod
-    def isfinite(a: Any) -> Any:
-        return np.isfinite(a)
-
-    @staticmethod
-    def isnan(a: Any) -> Any:
-        return np.isnan(a)
-
-    @staticmethod
-    def isinf(a: Any) -> Any:
-        return np.isinf(a)
-
-    @staticmethod
-    def copysign(a: Any, b: Any) -> Any:
-        return np.copysign(a, b)
-
-    @staticmethod
-    def not_(a: Any) -> Any:
-        return np.logical_not(a)
 
     @staticmethod
     def amax(values: Iterable[Any]) -> Any:
@@ -147,18 +122,22 @@ class ArrayOps:
 
     @staticmethod
     def any(m: Any) -> bool:
+        """Whether the mask holds in any lane."""
         return bool(np.any(m))
 
     @staticmethod
     def all(m: Any) -> bool:
+        """Whether the mask holds in every lane."""
         return bool(np.all(m))
 
     @staticmethod
     def count(m: Any) -> Any:
+        """1 where the mask holds, else 0, as integers."""
         return np.asarray(m, dtype=np.int64)
 
     @staticmethod
     def most(n: Any) -> int:
+        """The largest count over the lanes."""
         return int(np.max(n)) if np.size(n) else 0
 
 

@@ -14,7 +14,7 @@ from typing import Any
 
 from trimtab.errors import DataError, ModelError
 from trimtab.model.parts import parsed
-from trimtab.model.terms import Scaler, TermSpec, as_float, float_list
+from trimtab.model.terms import Scaler, TermSpec, as_float, check_keys, float_list
 
 __all__ = ["STATE_KEYS", "finite", "model_arguments", "positive_or_none"]
 
@@ -30,12 +30,7 @@ def model_arguments(d: Mapping[str, Any]) -> tuple[TermSpec, Scaler, dict[str, A
     """(spec, scaler, keyword arguments) of a model's ``to_dict`` form, every key checked."""
     if not isinstance(d, Mapping):
         raise DataError("model: expected an object")
-    missing = sorted(STATE_KEYS - set(d))
-    if missing:
-        raise DataError(f"model: missing key {missing[0]!r}")
-    extra = sorted(set(d) - STATE_KEYS)
-    if extra:
-        raise DataError(f"model: unknown key {extra[0]!r}")
+    check_keys(d, STATE_KEYS, "model")
     spec = parsed(d["spec"], TermSpec.from_dict)
     scaler = parsed(d["scaler"], Scaler.from_dict)
     kw: dict[str, Any] = {
