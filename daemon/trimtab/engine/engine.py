@@ -22,7 +22,7 @@ import math
 from collections import Counter
 from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -43,6 +43,9 @@ from trimtab.errors import StateError
 from trimtab.messages import Corrected, Reading, Reference
 from trimtab.model.online import RidgeModel, shared
 from trimtab.model.terms import Scaler, TermSpec
+
+if TYPE_CHECKING:
+    from trimtab.config.sensors import SensorSettings
 
 __all__ = ["PENDING_LIMIT", "STATE_VERSION", "Engine", "RefOutcome"]
 
@@ -70,7 +73,7 @@ class Engine:
         self.counts: Counter[str] = Counter()
         self.learner: Learner = KernelLearner() if learner is None else learner
         self._parts = Parts()
-        self._specs: dict[int, tuple[Any, TermSpec]] = {}
+        self._specs: dict[int, tuple[SensorSettings, TermSpec]] = {}
         self._served: set[str] = set()
         self._configure(settings)
 
@@ -157,7 +160,7 @@ class Engine:
             self._sensors[sensor] = st
         return st
 
-    def _spec_of(self, settings: Any) -> TermSpec:
+    def _spec_of(self, settings: SensorSettings) -> TermSpec:
         """``spec_of(settings)``, built once per settings object (sensors share them)."""
         found = self._specs.get(id(settings))
         if found is not None and found[0] is settings:

@@ -112,7 +112,7 @@ def learn(ops: Ops, lane: Any, m: Any, phi: Any, y: Any, t: Any, s: GuardSetting
     lift = ops.where(ops.isnan(last), 0.0, gap_fraction(t - last, s.step_gap))
     rej, shift = judge(ops, g, fin, r, spread, s, t)
     suspect = rej & ops.not_(shift)
-    stuck = shift & False
+    stuck = shift & False  # no lane is stuck unless its run turns out flat below
     if ops.any(suspect):
         lane.hold(suspect, item, s)
     if ops.any(shift):

@@ -102,8 +102,6 @@ class KernelLearner:
         model = st.model
         assert model is not None
         move_scaler(engine, st, model, engine.next_scaler(st, model.scaler))
-        model = st.model
-        assert model is not None
         phi, _ = model.phi(dict(zip(st.spec.inputs, values, strict=True)), t_pair)
         code, r = learn(SCALAR, st, True, phi, y, ref_t, engine.guard_settings, engine.band,
                         (phi, y))
