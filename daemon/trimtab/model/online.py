@@ -230,14 +230,15 @@ class RidgeModel:
         A non-finite input raises ModelError; so does a term that overflows to ±inf unless
         ``clip`` is set, in which case it is clipped like any other far-out value.
         """
-        return self.phi_of_row(self._spec.row(inputs, t, self._origin), t)
+        row = self._spec.row(inputs, t, self._origin)
+        # phi_of_row's two lines, not a call to it: a Python frame less on the per-sample path
+        phi, zmax, finite = standardise(SCALAR, row, self._centre, self._scale, self._clip)
+        return (phi, zmax) if finite else self._phi_checked(row, t)
 
     def phi_of_row(self, row: list[float], t: float) -> tuple[list[float], float]:
         """:meth:`phi` from the term values ``spec.row(inputs, t, origin)`` already computed."""
         phi, zmax, finite = standardise(SCALAR, row, self._centre, self._scale, self._clip)
-        if finite:
-            return phi, zmax
-        return self._phi_checked(row, t)
+        return (phi, zmax) if finite else self._phi_checked(row, t)
 
     def _phi_checked(self, row: list[float], t: float) -> tuple[list[float], float]:
         """:meth:`phi` term by term, naming the first term that is not finite."""

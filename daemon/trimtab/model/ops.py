@@ -73,21 +73,23 @@ class ScalarOps:
         """``maximum(−d, minimum(d, x))`` for d > 0, in one step (NaN stays NaN)."""
         return d if x >= d else -d if x <= -d else x
 
-    absolute: Callable[[Any], Any] = staticmethod(abs)
-    isfinite: Callable[[Any], Any] = staticmethod(math.isfinite)
-    isnan: Callable[[Any], Any] = staticmethod(math.isnan)
-    isinf: Callable[[Any], Any] = staticmethod(math.isinf)
-    copysign: Callable[[Any, Any], Any] = staticmethod(math.copysign)
-    amax: Callable[[Iterable[Any]], Any] = staticmethod(_MAX)
+    # builtins themselves, not wrapped: C functions do not bind to an instance, so a lookup
+    # and a call cost no Python frame on the per-sample path
+    absolute: Callable[[Any], Any] = abs
+    isfinite: Callable[[Any], Any] = math.isfinite
+    isnan: Callable[[Any], Any] = math.isnan
+    isinf: Callable[[Any], Any] = math.isinf
+    copysign: Callable[[Any, Any], Any] = math.copysign
+    amax: Callable[[Iterable[Any]], Any] = _MAX
     """The largest of finite values."""
-    not_: Callable[[Any], Any] = staticmethod(operator.not_)
-    any: Callable[[Any], bool] = staticmethod(bool)
+    not_: Callable[[Any], Any] = operator.not_
+    any: Callable[[Any], bool] = bool
     """Whether the mask holds anywhere."""
-    all: Callable[[Any], bool] = staticmethod(bool)
+    all: Callable[[Any], bool] = bool
     """Whether the mask holds everywhere."""
-    count: Callable[[Any], Any] = staticmethod(int)
+    count: Callable[[Any], Any] = int
     """1 where the mask holds, else 0 (to add to a tally)."""
-    most: Callable[[Any], int] = staticmethod(int)
+    most: Callable[[Any], int] = int
     """The largest count over the lanes."""
 
 

@@ -106,7 +106,7 @@ class TermSpec:
             ) from None
         except (TypeError, ValueError) as exc:
             raise DataError(f"reading has a non-numeric input: {exc}") from None
-        out = list(v)
+        out = v  # derived terms follow the inputs; they read only the inputs' positions
         for i, j in self._product_idx:
             out.append(v[i] * v[j])
         for i in self._square_idx:
