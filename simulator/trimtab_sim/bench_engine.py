@@ -24,7 +24,7 @@ from typing import Any
 import numpy as np
 
 from trimtab.config import Config
-from trimtab.engine.engine import Engine
+from trimtab.engine.wiring import make_engine
 from trimtab.messages import Reading, Reference
 from trimtab.model.online import RidgeModel
 from trimtab.model.terms import Scaler, TermSpec
@@ -132,7 +132,7 @@ def engine_figures(cfg: Config, n: int) -> EngineFigures:
         refs.append(Reference(t, s, raw * 0.9 + 2.0))
     best_read = best_ref = math.inf
     for _ in range(REPEATS):
-        engine = Engine(cfg)
+        engine = make_engine(cfg)
         start = time.perf_counter()
         for r in readings:
             engine.on_reading(r)

@@ -25,8 +25,9 @@ from pathlib import Path
 from typing import Any
 
 from trimtab.config import Config, load_config
-from trimtab.engine.engine import STATE_VERSION, Engine
+from trimtab.engine.engine import STATE_VERSION
 from trimtab.engine.pairing import ReadingBuffer
+from trimtab.engine.wiring import make_engine
 from trimtab.messages import Reading, Reference
 from trimtab.store.statestore import StateStore
 from trimtab_sim.bench_setup import STEP, T0, _values, daemon_toml
@@ -47,7 +48,7 @@ def bench_config(workdir: Path, inputs: int = 3) -> Config:
 
 def template_state(cfg: Config) -> str:
     """One sensor's state after two hours of readings and references, as JSON text."""
-    engine = Engine(cfg)
+    engine = make_engine(cfg)
     for i in range(FEED_READINGS):
         t = T0 + STEP * i
         truth, raw, temp, rh = _values(0, i)
@@ -76,7 +77,7 @@ def memory(n: int, mode: str, inputs: int, workdir: Path) -> dict[str, Any]:
     """Bytes per sensor held by an engine of ``n`` sensors (``mode``: rss or traced)."""
     cfg = bench_config(workdir, inputs)
     template = template_state(cfg)
-    engine = Engine(cfg)
+    engine = make_engine(cfg)
     gc.collect()
     if mode == "traced":
         tracemalloc.start()
@@ -99,7 +100,7 @@ def memory(n: int, mode: str, inputs: int, workdir: Path) -> dict[str, Any]:
 def checkpoint(n: int, workdir: Path) -> dict[str, Any]:
     """Write a checkpoint of ``n`` sensors into ``workdir/state``; time it."""
     cfg = bench_config(workdir)
-    engine = Engine(cfg)
+    engine = make_engine(cfg)
     engine.load_state(engine_state(template_state(cfg), n))
     store = StateStore(workdir / "state", durability="fsync")
     store.recover()
@@ -121,7 +122,7 @@ def restart(workdir: Path) -> dict[str, Any]:
     try:
         rec = store.recover()
         loaded = time.perf_counter()
-        engine = Engine(cfg)
+        engine = make_engine(cfg)
         if rec.state is not None:
             engine.load_state(rec.state)
         seconds = time.perf_counter() - start

@@ -17,7 +17,7 @@ from collections.abc import Callable
 import pytest
 
 from trimtab.config import Config, parse_config
-from trimtab.engine.engine import Engine
+from trimtab.engine.wiring import make_engine
 from trimtab.errors import DecodeError
 from trimtab.messages import Corrected, Reading, Reference
 from trimtab.wire.codec import JsonCodec
@@ -54,7 +54,7 @@ class Run:
 
     def __init__(self, ref_value: RefRule, *, offset_from: int | None = None,
                  offset: float = 0.0) -> None:
-        self.engine = Engine(_config())
+        self.engine = make_engine(_config())
         self.outputs: list[tuple[int, Corrected]] = []
         self.statuses: list[tuple[int, str]] = []
         rng = random.Random(1)
@@ -141,7 +141,7 @@ class TestNonFinite:
 
     def test_non_finite_readings_give_no_output_and_leave_state_clean(self) -> None:
         """NaN/inf readings handed straight to the engine give no output and poison nothing."""
-        engine = Engine(_config())
+        engine = make_engine(_config())
         for k, v in enumerate([math.nan, math.inf, -math.inf]):
             assert engine.process(Reading(T0 + k, "s1", {"raw": v})) == []
         assert engine.process(Reading(math.nan, "s1", {"raw": 40.0})) == []
@@ -241,7 +241,7 @@ class TestFlood:
         """
         full = current_scale().name == "full"
         ids, limit = (100_000, 10_000) if full else (2_000, 200)
-        engine = Engine(parse_config({
+        engine = make_engine(parse_config({
             "broker": {"client_id": "adversarial"},
             "sensors": {"pattern": "s[0-9]+", "max": limit, "defaults": {
                 "inputs": ["raw"], "centre": {"raw": 40.0}, "scale": {"raw": 10.0}}},

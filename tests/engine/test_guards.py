@@ -14,6 +14,7 @@ from hypothesis import strategies as st
 from trimtab.config import parse_config
 from trimtab.engine.engine import Engine
 from trimtab.engine.guards import Guard, GuardSettings, gap_fraction, lifted
+from trimtab.engine.wiring import make_engine
 from trimtab.messages import Reading, Reference
 
 T0 = 1_767_225_600.0
@@ -21,7 +22,7 @@ T0 = 1_767_225_600.0
 
 def _engine(alpha: float, alpha_min: float, alpha_max: float, recovery: float,
             factor: float) -> Engine:
-    return Engine(parse_config({
+    return make_engine(parse_config({
         "broker": {"client_id": "guards"},
         "sensors": {"ids": ["s1"], "defaults": {
             "inputs": ["raw"], "centre": {"raw": 40.0}, "scale": {"raw": 10.0}}},

@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import Any
 
 from trimtab.config import apply_reload, load_config, parse_config, reloads_live
-from trimtab.engine.wiring import make_engine, status_topic
+from trimtab.engine.wiring import engine_settings, make_engine, status_topic
 from trimtab.messages import Reading, Reference
 from trimtab_sim.broker import PrivateBroker
 from trimtab_sim.mqttio import play
@@ -126,7 +126,7 @@ class TestReloadOverTheBroker:
         expected = make_engine(cfg1)
         for e in before:
             expected.process(e)
-        expected.reconfigure(applied)
+        expected.reconfigure(engine_settings(applied))
         for e in after:
             expected.process(e)
         recovered = recovered_engine(cfg2)

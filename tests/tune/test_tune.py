@@ -48,9 +48,11 @@ from trimtab.tune.grid import (
     load_grid,
     search_settings,
 )
+from trimtab.tune.lanes import phi_block
+from trimtab.tune.run import GroupedRun, tune_stream
+from trimtab.tune.scores import seq_add
 from trimtab.tune.trace import Trace, record
-from trimtab.tune.tuner import Tuner, TuneResult, tune_stream
-from trimtab.tune.vengine import _seq_add, phi_rows
+from trimtab.tune.tuner import Tuner, TuneResult
 from trimtab.wire.streamfile import read_events, write_events
 from trimtab_sim.generate import write_stream
 from trimtab_sim.scenario import parse_scenario
@@ -170,6 +172,17 @@ def _replay(cfg: Config, stream: Path) -> tuple[dict[str, Any], str]:
     return json.loads(json.dumps(engine.state_dict())), out.getvalue()
 
 
+def _equals_replay(run: GroupedRun, cand: Candidate, stream: Path) -> dict[str, Any]:
+    """Assert a tuned candidate's state and tune/test scores are replay's; replay's state."""
+    assert cand.config is not None
+    state, out = _replay(cand.config, stream)
+    assert json.loads(json.dumps(run.engine_state(cand.index))) == state, cand.settings
+    o = next(o for o in run.result.outcomes if o.candidate.index == cand.index)
+    got = [(o.tune.sse, o.tune.total, o.tune.n), (o.test.sse, o.test.total, o.test.n)]
+    assert got == _replay_scores(stream, out, run.tuners[0].split_t)
+    return state
+
+
 @dataclass
 class Run:
     """A tuned stream shared by a module's tests."""
@@ -218,7 +231,7 @@ class TestVectorisedArithmetic:
         rng = np.random.default_rng(5)
         X = np.column_stack((rng.normal(30, 20, 300), rng.normal(12, 9, 300)))
         t = 1.7e9 + np.sort(rng.uniform(0, 40 * 86400.0, 300))
-        rows = phi_rows(model, X, t)
+        rows = np.column_stack(phi_block(model, X, t))
         for i in range(300):
             expected, _ = model.phi({"raw": float(X[i, 0]), "temp": float(X[i, 1])}, float(t[i]))
             assert rows[i].tolist() == expected
@@ -229,7 +242,7 @@ class TestVectorisedArithmetic:
         rng = np.random.default_rng(9)
         parts = rng.normal(0, 1, (3, 500)) * 10.0 ** rng.integers(-8, 8, (3, 500))
         acc = np.array([1.0, -2.0, 3e7])
-        got = _seq_add(acc, parts)
+        got = seq_add(acc, parts)
         for k in range(3):
             s = float(acc[k])
             for v in parts[k].tolist():
@@ -276,15 +289,9 @@ class TestEqualsReplay:
         assert all(c.valid for c in cands)
         run = tune_stream(perturbed.stream, cands, split=0.7)
         assert len(run.tuners) == 5  # fixed, and follow at 2 widths × 2 spans
-        by_index = {o.candidate.index: o for o in run.result.outcomes}
         seen: set[str] = set()
         for cand in cands[::3]:
-            assert cand.config is not None
-            state, out = _replay(cand.config, perturbed.stream)
-            assert json.loads(json.dumps(run.engine_state(cand.index))) == state, cand.settings
-            o = by_index[cand.index]
-            got = [(o.tune.sse, o.tune.total, o.tune.n), (o.test.sse, o.test.total, o.test.n)]
-            assert got == _replay_scores(perturbed.stream, out, run.tuners[0].split_t)
+            state = _equals_replay(run, cand, perturbed.stream)
             seen |= {k for k, v in state["counts"].items() if v}
         assert {"scaler_moved", "reference_rolled_back", "reference_level_shift"} <= seen
 
@@ -298,14 +305,8 @@ class TestEqualsReplay:
         assert len(cands) == 4 and all(c.valid for c in cands)
         run = tune_stream(perturbed.stream, cands, split=0.7)
         assert len(run.tuners) == 4
-        by_index = {o.candidate.index: o for o in run.result.outcomes}
         for cand in cands:
-            assert cand.config is not None
-            state, out = _replay(cand.config, perturbed.stream)
-            assert json.loads(json.dumps(run.engine_state(cand.index))) == state
-            o = by_index[cand.index]
-            got = [(o.tune.sse, o.tune.total, o.tune.n), (o.test.sse, o.test.total, o.test.n)]
-            assert got == _replay_scores(perturbed.stream, out, run.tuners[0].split_t)
+            _equals_replay(run, cand, perturbed.stream)
         names = {tuple(json.loads(json.dumps(run.engine_state(c.index)))["sensors"][
             "pm25-quay-01"]["model"]["spec"]["squares"]) for c in cands}
         assert names == {(), ("temp",)}
@@ -738,3 +739,110 @@ class TestStopping:
         assert cands[0].refused and all(w.startswith("candidate 0: ") for w in cands[0].refused)
         with pytest.raises(ConfigError):
             parse_config(_merged(perturbed.base, {"alpha": 9.0}))
+
+
+# Every key of [learning] and [output], and the sensor settings the learning reads, set away
+# from its default in one variant of the perturbed run's config; each variant is tuned on a
+# grid of two candidates, and each candidate must equal `trimtab replay` with its config.
+VARIANTS: dict[str, dict[str, dict[str, Any]]] = {
+    "guards": {"learning": {"gate_k": 2.5, "gate_run": 2, "shift_after": 7200.0, "warmup": 3,
+                            "snapshot_every": 6, "rollback_factor": 1.5, "error_window": 40,
+                            "alpha_recovery": 0.5, "alpha_min": 0.002, "max_references": 1,
+                            "reference_interval": 7200.0}},
+    "step": {"learning": {"lambda": 3.0, "lambda_min": 0.5, "lambda_max": 6.0, "memory": 120,
+                          "normalised": False, "huber_delta": 2.0, "step_gap": 5400.0,
+                          "alpha_max": 0.05, "feature_clip": 3.0}},
+    "scaler": {"learning": {"scaler_span": 172800.0, "scaler_width": 3.0}},
+    "fixed": {"learning": {"scaler": "fixed", "step_adapt": "none", "alpha": 0.013}},
+    "output": {"output": {"band_coverage": 0.8, "band_gain": 0.2, "cap": 0.5,
+                          "stale_after": 900.0, "extrapolation": 1.5}},
+    "intercept": {"sensors.defaults": {"penalise_intercept": True}},
+    # one of the two monitors starts from a fitted state, the other from its first readings
+    "initial": {"sensors.overrides.pm25-quay-01": {"initial_state": "<fit>"}},
+}
+EVIDENCE: dict[str, Callable[[dict[str, Any], str], bool]] = {
+    "guards": lambda state, out: state["counts"].get("reference_rate_limited", 0) > 0,
+    "output": lambda state, out: '"capped"' in out and '"stale"' in out,
+    "fixed": lambda state, out: "scaler_moved" not in state["counts"],
+    "scaler": lambda state, out: state["counts"].get("scaler_moved", 0) > 0,
+    "initial": lambda state, out: state["sensors"]["pm25-quay-01"]["warm"]
+    and not state["sensors"]["pm25-quay-02"]["warm"],
+}
+"""What shows that a variant's keys were in force in the replay, beyond changing it."""
+VARIANT_GRIDS: dict[str, dict[str, list[Value]]] = {
+    "fixed": {"lambda": [0.5, 5.0]},
+    "intercept": {"lambda": [0.5, 5.0]},
+}
+
+
+def _initial_state(stream: Path, path: Path) -> Path:
+    """A model-state file fitted by `trimtab fit` on the stream's first day of one monitor
+    (every tenth reading against its simulated truth): raw, temp, rh and elapsed days."""
+    rows = ["t,raw,temp,rh,ref"]
+    events = [e for e in read_events(stream)
+              if isinstance(e, Reading) and e.sensor == "pm25-quay-01" and e.truth is not None]
+    for e in events[: 1440 : 10]:
+        rows.append(f"{e.t},{e.inputs['raw']},{e.inputs['temp']},{e.inputs['rh']},{e.truth}")
+    csv = path.with_suffix(".csv")
+    csv.write_text("\n".join(rows) + "\n")
+    assert cli_main(["fit", str(csv), "--inputs", "raw,temp,rh", "--elapsed", "--lambda", "1",
+                     "-o", str(path)]) == 0
+    return path
+
+
+def _variant(base: Mapping[str, Any], name: str, fit: Path) -> dict[str, Any]:
+    data = json.loads(json.dumps(base))
+    for where, keys in VARIANTS[name].items():
+        section = data
+        for part in where.split("."):
+            section = section.setdefault(part, {})
+        section.update({k: str(fit) if v == "<fit>" else v for k, v in keys.items()})
+    return data
+
+
+class TestEveryKeyEqualsReplay:
+    """Whatever the config sets, a tuned candidate ends with replay's state and score."""
+
+    def test_every_learning_and_output_key_is_covered(self) -> None:
+        """The variants set every key of [learning] and [output] (so a new key needs one)."""
+        from trimtab.config import LearningSettings, OutputSettings
+
+        set_here = {(where, k) for v in VARIANTS.values() for where, keys in v.items()
+                    for k in keys}
+        for where, model in (("learning", LearningSettings), ("output", OutputSettings)):
+            for name, field in model.model_fields.items():
+                assert (where, field.alias or name) in set_here, f"{where}.{name} not covered"
+        assert {("sensors.overrides.pm25-quay-01", "initial_state"),
+                ("sensors.defaults", "penalise_intercept")} <= set_here
+
+    @pytest.mark.parametrize("name", sorted(VARIANTS))
+    def test_variant_candidates_equal_replay(self, perturbed: Run, tmp_path: Path,
+                                             name: str) -> None:
+        """Each variant's keys are away from their defaults and change what replay gives; each
+        of its two candidates then equals replay in state and score, bit for bit."""
+        fit = _initial_state(perturbed.stream, tmp_path / "fit.json")
+        data = _variant(perturbed.base, name, fit)
+        cfg = parse_config(data)
+        default = parse_config({"broker": {"client_id": "x"}, "sensors": {"ids": ["s"]}})
+        for where, keys in VARIANTS[name].items():
+            for key, _ in keys.items():
+                attr = "lam" if key == "lambda" else key
+                ours = (cfg.sensor_settings(where.split(".")[-1]) if where.startswith("sensors")
+                        else getattr(cfg, where))
+                theirs = (default.sensors.defaults if where.startswith("sensors")
+                          else getattr(default, where))
+                assert getattr(ours, attr) != getattr(theirs, attr), f"{where}.{key} is default"
+        grid = VARIANT_GRIDS.get(name, {"alpha": [0.004, 0.013]})
+        cands = build_candidates(data, cfg, grid_settings(cfg, grid), label="grid",
+                                 include_current=False)
+        assert len(cands) == 2 and all(c.valid for c in cands), [c.refused for c in cands]
+        run = tune_stream(perturbed.stream, cands, split=0.7)
+        for cand in cands:
+            _equals_replay(run, cand, perturbed.stream)
+        # the variant's keys matter: without them the same candidate replays differently
+        plain = parse_config(candidate_document(perturbed.base,
+                                                {k: cands[0].settings[k] for k in grid}))
+        plain_state, plain_out = _replay(plain, perturbed.stream)
+        state, out = _replay(cands[0].config, perturbed.stream)  # type: ignore[arg-type]
+        assert (plain_state, plain_out) != (state, out)
+        assert EVIDENCE.get(name, lambda state, out: True)(state, out)

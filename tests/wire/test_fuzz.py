@@ -22,7 +22,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from trimtab.config import load_config, parse_config
-from trimtab.engine.engine import Engine
+from trimtab.engine.wiring import make_engine
 from trimtab.errors import ConfigError, DataError, DecodeError, StateError, TrimtabError
 from trimtab.messages import Reading, Reference
 from trimtab.store.checkpoint import decode_checkpoint, encode_checkpoint
@@ -288,7 +288,7 @@ def _model_doc() -> dict[str, Any]:
     cfg = parse_config({"broker": {"client_id": "fuzz"}, "sensors": {
         "ids": ["s1"], "defaults": {"inputs": ["raw"], "centre": {"raw": 40.0},
                                     "scale": {"raw": 10.0}}}, "learning": {"warmup": 1}})
-    engine = Engine(cfg)
+    engine = make_engine(cfg)
     for i in range(20):
         engine.process(Reading(T0 + 60 * i, "s1", {"raw": 30.0 + i}))
         engine.process(Reference(T0 + 60 * i, "s1", 25.0 + i))
@@ -369,7 +369,7 @@ class TestJournalAndCheckpoint:
         cfg = parse_config({"broker": {"client_id": "fuzz"}, "sensors": {
             "ids": ["s1"], "defaults": {"inputs": ["raw"], "centre": {"raw": 40.0},
                                         "scale": {"raw": 10.0}}}})
-        engine = Engine(cfg)
+        engine = make_engine(cfg)
         for i in range(12):
             engine.process(Reading(T0 + 60 * i, "s1", {"raw": 30.0 + i}))
             engine.process(Reference(T0 + 60 * i, "s1", 25.0 + i))
@@ -384,7 +384,7 @@ class TestJournalAndCheckpoint:
                     assert str(exc)
                 return
             try:  # a state that passed its checksum but is not what this build writes
-                Engine(cfg).load_state(x)
+                make_engine(cfg).load_state(x)
             except TrimtabError as exc:
                 assert isinstance(exc, StateError | DataError) and str(exc)
 

@@ -16,7 +16,8 @@ from typing import Any
 from trimtab.commands.options import deprecated
 from trimtab.config import RELOADABLE, Config, file_problems, load_config
 from trimtab.config.figures import derived_figures
-from trimtab.engine.engine import configured_prior, configured_scaler, prior_mode, spec_of
+from trimtab.config import RELOADABLE, Config, file_problems, load_config
+from trimtab.engine.settings import configured_prior, configured_scaler, prior_mode, spec_of
 from trimtab.engine.wiring import initial_models
 from trimtab.errors import ConfigError, EncodeError
 from trimtab.model.online import RidgeModel
@@ -115,7 +116,7 @@ def model_figures(cfg: Config, models: dict[str, RidgeModel]) -> dict[str, Any]:
             if model is not None:
                 scaler, start = model.scaler, model.theta
         else:
-            scaler = configured_scaler(spec, s, cfg)
+            scaler = configured_scaler(spec, s, cfg.learning)
             entry["scaler_from"] = ("configured centre and scale" if scaler is not None else
                                     f"the first {s.scaler_readings} readings")
         if scaler is not None:

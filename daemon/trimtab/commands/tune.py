@@ -35,7 +35,8 @@ from trimtab.tune.grid import (
     load_grid,
     search_settings,
 )
-from trimtab.tune.tuner import Outcome, Score, TuneResult, snippet, tune_stream
+from trimtab.tune.run import snippet, tune_stream
+from trimtab.tune.tuner import Outcome, Score, TuneResult
 from trimtab.wire.csvstream import readable_stream
 
 DEFAULT_SEARCH = 64

@@ -27,68 +27,203 @@ them in practice (a broken reference instrument, a sensor swapped without notice
 * **recovery** — after each applied reference that is not rolled back, α moves the fraction
   ``alpha_recovery`` of the way back to the configured α, so a rollback costs steps for a
   while, not for good. α stays within [``alpha_min``, configured α] ⊆ [α_min, α_max].
+
+Each rule is written once, as a function over :mod:`trimtab.model.ops` and a mask ``m`` of the
+lanes it acts on: the daemon runs it on one sensor's :class:`Guard` (floats, ``m`` a bool),
+the tuner on K candidates' guards at once (K-vectors). A guard holds, besides the fields of
+:class:`Guard`, its suspects and whether it has a snapshot; how those are stored differs (a
+list of feature vectors, or indices into the recorded references), so the guard object
+answers for them (:class:`Guard` for floats, :class:`trimtab.tune.lanes.Lanes` for arrays).
 """
 
 from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any, Literal, TypeVar
+from typing import Any, Literal
 
-import numpy as np
+from trimtab.model.kernel import SQRT_HALF_PI
+from trimtab.model.ops import SCALAR, Ops
+
+__all__ = [
+    "SQRT_HALF_PI",
+    "Guard",
+    "GuardSettings",
+    "Verdict",
+    "end_run",
+    "exploded",
+    "gap_fraction",
+    "judge",
+    "lifted",
+    "mark_snapshot",
+    "record",
+    "recover",
+    "restart_baseline",
+    "roll_back",
+]
 
 Verdict = Literal["apply", "suspect", "shift"]
-T = TypeVar("T", float, "np.ndarray[Any, np.dtype[np.float64]]")
 
 
-def gap_fraction(gap: T, span: T | float) -> T:
+def gap_fraction(gap: Any, span: Any) -> Any:
     """How far a reference's step rises toward α_max after ``gap`` seconds without one.
 
     ``gap / (gap + span)``: 0 right after a reference, ½ after ``span``, → 1 after a long gap.
     A random-walk drift grows the model's uncertainty with elapsed time, so the first
     reference after a long gap deserves the largest step (the Kalman filter's gain does the
-    same); consecutive references fall back to the configured α. Plain arithmetic, so floats
-    and arrays (the tuner's candidates) give the same bits.
+    same); consecutive references fall back to the configured α. ``span`` = +inf turns the
+    lift off (``step_adapt = "none"``): the fraction is then 0.
     """
     return gap / (gap + span)
 
 
-def lifted(alpha: T, alpha_max: T | float, fraction: T | float) -> T:
+def lifted(alpha: Any, alpha_max: Any, fraction: Any, ops: Ops = SCALAR) -> Any:
     """α raised the given fraction of the way to α_max: always inside [α, α_max].
 
     The ``minimum`` keeps a rounding of α + (α_max − α)·1 from landing one ulp above α_max.
     """
-    out: T = np.minimum(alpha_max, alpha + (alpha_max - alpha) * fraction)
-    return out
-SQRT_HALF_PI = math.sqrt(math.pi / 2.0)
+    return ops.minimum(alpha_max, alpha + (alpha_max - alpha) * fraction)
 
 
 @dataclass(frozen=True, slots=True)
 class GuardSettings:
-    """The guard's knobs, taken from the ``[learning]`` section of the config."""
+    """The guard's knobs, taken from the ``[learning]`` section of the config.
 
-    gate_k: float
-    gate_run: int
-    warmup: int
-    snapshot_every: int
-    rollback_factor: float
-    alpha: float
-    alpha_min: float
-    error_window: int = 200
-    alpha_recovery: float = 0.0
-    shift_after: float = 0.0
+    Floats for one sensor; any of them may be a K-vector for K candidates. ``step_gap`` is
+    +inf when the gap lift is off.
+    """
+
+    gate_k: Any
+    gate_run: Any
+    warmup: Any
+    snapshot_every: Any
+    rollback_factor: Any
+    alpha: Any
+    alpha_min: Any
+    error_window: Any = 200
+    alpha_recovery: Any = 0.0
+    shift_after: Any = 0.0
+    alpha_max: Any = 1.0
+    step_gap: Any = math.inf
+
+
+# -- the rules, once for floats and K-vectors ---------------------------------------------------
+
+
+def judge(ops: Ops, g: Any, m: Any, residual: Any, spread: Any, s: GuardSettings,
+          t: Any) -> tuple[Any, Any]:
+    """Gate the references in ``m``: (beyond the gate, and of those, a level shift).
+
+    The gate is active after ``warmup`` applied references with a spread; it compares |r| with
+    ``gate_k`` times the larger of the recent spread and the long-window scale (a calm night's
+    spread alone would gate the next ordinary rush hour). A reference within it ends any run;
+    one beyond it on the other side from the run starts a new run at t.
+    """
+    gate = (g.applied >= s.warmup) & (spread > 0.0)
+    scale = ops.maximum(spread, SQRT_HALF_PI * g.long_abs)
+    rej = m & gate & ops.not_(ops.absolute(residual) <= s.gate_k * scale)
+    accept = m & ops.not_(rej)
+    if ops.any(accept):
+        end_run(ops, g, accept)
+    if ops.any(rej):
+        sign = ops.where(residual > 0, 1, -1)
+        new_run = rej & (sign != g.run_sign)
+        g.run_sign = ops.where(new_run, sign, g.run_sign)
+        g.clear_suspects(new_run)
+        g.run_t0 = ops.where(new_run | (rej & ops.isnan(g.run_t0)), t, g.run_t0)
+        shift = rej & (g.n_suspects() + 1 >= s.gate_run) & (t - g.run_t0 >= s.shift_after)
+        return rej, shift
+    return rej, rej
+
+
+def end_run(ops: Ops, g: Any, m: Any) -> None:
+    """End the suspect run where ``m``: no side, no start time, no held suspects."""
+    g.run_sign = ops.where(m, 0, g.run_sign)
+    g.clear_suspects(m)
+    g.run_t0 = ops.where(m, math.nan, g.run_t0)
+
+
+def record(ops: Ops, g: Any, m: Any, residual: Any, s: GuardSettings) -> None:
+    """Fold each applied reference's prequential residual into the recent and long errors."""
+    w = 2.0 / (s.snapshot_every + 1.0)
+    sq = residual * residual
+    g.recent_ms = ops.where(m, ops.where(g.fresh, sq, (1.0 - w) * g.recent_ms + w * sq),
+                            g.recent_ms)
+    g.fresh = g.fresh & ops.not_(m)
+    a = ops.absolute(residual)
+    wl = 2.0 / (s.error_window + 1.0)
+    g.long_abs = ops.where(m, ops.where(g.long_n == 0, a, g.long_abs + wl * (a - g.long_abs)),
+                           g.long_abs)
+    one = ops.count(m)
+    g.long_n = g.long_n + one
+    g.applied = g.applied + one
+    g.since_snapshot = g.since_snapshot + one
+
+
+def exploded(ops: Ops, g: Any, s: GuardSettings) -> Any:
+    """Where the recent error has grown past the rollback threshold (see the module)."""
+    limit = s.rollback_factor * SQRT_HALF_PI * g.long_abs
+    return (g.has_snapshot() & (g.long_n >= s.snapshot_every)) & (
+        (g.long_abs > 0.0) & (g.recent_ms > limit * limit))
+
+
+def recover(ops: Ops, g: Any, m: Any, s: GuardSettings) -> None:
+    """After a good reference: α moves ``alpha_recovery`` of the way back to its setting."""
+    low = m & (g.alpha < s.alpha) & (s.alpha_recovery > 0.0)
+    if ops.any(low):
+        back = ops.minimum(s.alpha, g.alpha + s.alpha_recovery * (s.alpha - g.alpha))
+        g.alpha = ops.where(low, back, g.alpha)
+        g.recoveries = g.recoveries + ops.count(low)
+
+
+def mark_snapshot(ops: Ops, g: Any, m: Any, ms: Any) -> None:
+    """The guard's side of a snapshot taken where ``m``: its error, and the count restarts."""
+    g.snapshot_ms = ops.where(m, ms, g.snapshot_ms)
+    g.since_snapshot = ops.where(m, 0, g.since_snapshot)
+
+
+def roll_back(ops: Ops, g: Any, m: Any, s: GuardSettings) -> None:
+    """Halve α (not below α_min), mark outputs held, restart the count and end any run.
+
+    The caller restores the weights from the snapshot.
+    """
+    g.alpha = ops.where(m, ops.maximum(g.alpha * 0.5, s.alpha_min), g.alpha)
+    g.held = g.held | m
+    g.rollbacks = g.rollbacks + ops.count(m)
+    g.recent_ms = ops.where(m, g.snapshot_ms, g.recent_ms)
+    g.since_snapshot = ops.where(m, 0, g.since_snapshot)
+    end_run(ops, g, m)
+
+
+def restart_baseline(ops: Ops, g: Any, m: Any) -> None:
+    """After an accepted level shift (the caller snapshots now): measure the regime afresh.
+
+    The snapshot's error is unknown until the next due snapshot, so no rollback can fire on
+    the shift's own large residuals.
+    """
+    mark_snapshot(ops, g, m, 0.0)
+    g.fresh = g.fresh | m
+    g.long_abs = ops.where(m, 0.0, g.long_abs)
+    g.long_n = ops.where(m, 0, g.long_n)
+
+
+# -- one sensor's guard -------------------------------------------------------------------------
 
 
 @dataclass(slots=True)
 class Guard:
-    """Mutable guard state of one sensor; plain data so it checkpoints as a dict."""
+    """Mutable guard state of one sensor; plain data so it checkpoints as a dict.
+
+    The methods are the rules above on floats, plus the storage of suspects (feature vector
+    and reference value, oldest first) and of the last good snapshot (a model's ``to_dict``).
+    """
 
     alpha: float
     applied: int = 0
     run_sign: int = 0
     suspects: list[tuple[list[float], float]] = field(default_factory=list)
-    run_t0: float | None = None
-    """Event time of the first suspect of the current run."""
+    run_t0: float = math.nan
+    """Event time of the first suspect of the current run (NaN: no run)."""
     recent_ms: float = 0.0
     snapshot: dict[str, Any] | None = None
     snapshot_ms: float = 0.0
@@ -101,27 +236,27 @@ class Guard:
     recoveries: int = 0
     """References after which α moved back toward its setting."""
 
+    # -- storage the rules ask for
+
+    def has_snapshot(self) -> bool:
+        """Whether a last good snapshot exists."""
+        return self.snapshot is not None
+
+    def n_suspects(self) -> int:
+        """How many suspects are held."""
+        return len(self.suspects)
+
+    def clear_suspects(self, m: bool = True) -> None:
+        """Forget the held suspects (where ``m``)."""
+        if m and self.suspects:
+            self.suspects = []
+
+    # -- the rules on this guard (the daemon's and the tests' vocabulary)
+
     def judge(self, residual: float, spread: float, s: GuardSettings, t: float = 0.0) -> Verdict:
         """Decide what to do with a paired reference (event time t, prequential residual)."""
-        gate_active = self.applied >= s.warmup and spread > 0.0
-        # the larger of the recent spread and the long-window scale: a calm night's spread
-        # alone would gate the next ordinary rush hour
-        scale = max(spread, SQRT_HALF_PI * self.long_abs)
-        if not gate_active or abs(residual) <= s.gate_k * scale:
-            self.run_sign = 0
-            self.suspects.clear()
-            self.run_t0 = None
-            return "apply"
-        sign = 1 if residual > 0 else -1
-        if sign != self.run_sign:
-            self.run_sign = sign
-            self.suspects.clear()
-            self.run_t0 = t
-        if self.run_t0 is None:
-            self.run_t0 = t
-        if len(self.suspects) + 1 >= s.gate_run and t - self.run_t0 >= s.shift_after:
-            return "shift"
-        return "suspect"
+        rej, shift = judge(SCALAR, self, True, residual, spread, s, t)
+        return "shift" if shift else "suspect" if rej else "apply"
 
     def hold(self, phi: list[float], y: float, s: GuardSettings) -> None:
         """Keep a suspect reference until the run decides: the latest ``gate_run`` − 1 only."""
@@ -135,71 +270,40 @@ class Guard:
 
     def take_suspects(self) -> list[tuple[list[float], float]]:
         """Hand over the held suspects (oldest first) and end the run."""
-        held, self.suspects = self.suspects, []
-        self.run_sign = 0
-        self.run_t0 = None
+        held = self.suspects
+        end_run(SCALAR, self, True)
         return held
 
     def record(self, residual: float, s: GuardSettings) -> None:
         """Fold one applied reference's prequential residual into the recent error."""
-        w = 2.0 / (s.snapshot_every + 1.0)
-        sq = residual * residual
-        self.recent_ms = sq if self.fresh else (1.0 - w) * self.recent_ms + w * sq
-        self.fresh = False
-        a = abs(residual)
-        wl = 2.0 / (s.error_window + 1.0)
-        self.long_abs = a if self.long_n == 0 else self.long_abs + wl * (a - self.long_abs)
-        self.long_n += 1
-        self.applied += 1
-        self.since_snapshot += 1
+        record(SCALAR, self, True, residual, s)
 
     def exploded(self, s: GuardSettings) -> bool:
         """Whether the recent error has grown past the rollback threshold (see the module)."""
-        if self.snapshot is None or self.long_n < s.snapshot_every or self.long_abs <= 0.0:
-            return False
-        limit = s.rollback_factor * SQRT_HALF_PI * self.long_abs
-        return self.recent_ms > limit * limit
+        return bool(exploded(SCALAR, self, s))
 
     def recover(self, s: GuardSettings) -> None:
         """After a good reference: α moves ``alpha_recovery`` of the way back to its setting."""
-        if self.alpha < s.alpha and s.alpha_recovery > 0.0:
-            self.alpha = min(s.alpha, self.alpha + s.alpha_recovery * (s.alpha - self.alpha))
-            self.recoveries += 1
+        recover(SCALAR, self, True, s)
 
     def due_snapshot(self, s: GuardSettings) -> bool:
         """Whether enough references were applied since the last good snapshot."""
-        return self.since_snapshot >= s.snapshot_every
+        return bool(self.since_snapshot >= s.snapshot_every)
 
     def take_snapshot(self, model_state: dict[str, Any]) -> None:
         """Remember the model as the last good one, with the error it had."""
         self.snapshot = model_state
-        self.snapshot_ms = self.recent_ms
-        self.since_snapshot = 0
+        mark_snapshot(SCALAR, self, True, self.recent_ms)
 
     def roll_back(self, s: GuardSettings) -> dict[str, Any] | None:
         """Halve α (not below α_min), mark outputs held, and return the snapshot to restore."""
-        self.alpha = max(self.alpha * 0.5, s.alpha_min)
-        self.held = True
-        self.rollbacks += 1
-        self.recent_ms = self.snapshot_ms
-        self.since_snapshot = 0
-        self.suspects.clear()
-        self.run_sign = 0
-        self.run_t0 = None
+        roll_back(SCALAR, self, True, s)
         return self.snapshot
 
     def restart_baseline(self, model_state: dict[str, Any]) -> None:
-        """After an accepted level shift: snapshot now, and measure the new regime afresh.
-
-        The snapshot's error is unknown until the next due snapshot, so no rollback can fire
-        on the shift's own large residuals.
-        """
+        """After an accepted level shift: snapshot now, and measure the new regime afresh."""
         self.snapshot = model_state
-        self.snapshot_ms = 0.0
-        self.since_snapshot = 0
-        self.fresh = True
-        self.long_abs = 0.0
-        self.long_n = 0
+        restart_baseline(SCALAR, self, True)
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-able state (floats round-trip exactly through json)."""
@@ -218,7 +322,7 @@ class Guard:
             "long_abs": self.long_abs,
             "long_n": self.long_n,
             "recoveries": self.recoveries,
-            "run_t0": self.run_t0,
+            "run_t0": None if math.isnan(self.run_t0) else self.run_t0,
         }
 
     @classmethod
@@ -239,5 +343,5 @@ class Guard:
             long_abs=float(d["long_abs"]),
             long_n=int(d["long_n"]),
             recoveries=int(d["recoveries"]),
-            run_t0=None if d["run_t0"] is None else float(d["run_t0"]),
+            run_t0=math.nan if d["run_t0"] is None else float(d["run_t0"]),
         )

@@ -1,14 +1,18 @@
 """Turning a validated config into working parts: codec, topic templates, initial models, engine.
 
-Shared by ``trimtab run`` and ``trimtab replay`` so both build the engine the same way.
+Shared by ``trimtab run`` and ``trimtab replay`` so both build the engine the same way. The
+engine is given its settings and the config's routing rules (:func:`engine_settings`), never
+the config tree itself.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from trimtab.engine.engine import Engine, spec_of
+from trimtab.engine.engine import Engine
+from trimtab.engine.settings import EngineSettings, Routing, spec_of
 from trimtab.errors import ConfigError, DataError
 from trimtab.model.online import RidgeModel
 from trimtab.store.modelfile import load_model_file
@@ -59,9 +63,39 @@ def initial_models(cfg: Config) -> dict[str, RidgeModel]:
     return models
 
 
+ROUTES_REMEMBERED = 4096
+"""Reference stream ids whose targets an engine's routing remembers, at most."""
+
+
+def _remembered(targets: Callable[[str], tuple[str, ...]]) -> Callable[[str], tuple[str, ...]]:
+    """``targets`` answered once per stream id (the config is immutable), for at most
+    ROUTES_REMEMBERED ids, so made-up ids cannot grow memory."""
+    seen: dict[str, tuple[str, ...]] = {}
+
+    def remembered(source: str) -> tuple[str, ...]:
+        found = seen.get(source)
+        if found is None:
+            found = targets(source)
+            if len(seen) < ROUTES_REMEMBERED:
+                seen[source] = found
+        return found
+
+    return remembered
+
+
+def engine_settings(cfg: Config) -> EngineSettings:
+    """What an engine takes from a config: its sections and the routing of sensors."""
+    return EngineSettings(
+        learning=cfg.learning, output=cfg.output, pairing=cfg.pairing,
+        routing=Routing(settings=cfg.sensor_settings, serves=cfg.sensor_allowed,
+                        targets=_remembered(cfg.reference_targets),
+                        max_sensors=cfg.sensors.max),
+    )
+
+
 def make_engine(cfg: Config) -> Engine:
     """A fresh engine with the config's initial models loaded."""
-    return Engine(cfg, initial_models(cfg))
+    return Engine(engine_settings(cfg), initial_models(cfg))
 
 
 def topic_templates(cfg: Config) -> tuple[TopicTemplate, TopicTemplate, TopicTemplate]:

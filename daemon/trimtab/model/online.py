@@ -1,30 +1,33 @@
 """One sensor's ridge regression: standardised features, a prior, and the online update.
 
-Plain Python floats on the per-sample path (a few hundred nanoseconds a term); numpy only in
-:meth:`RidgeModel.cost` and :meth:`RidgeModel.gradient`, which serve fitting and tests.
+Plain Python floats on the per-sample path (a few hundred nanoseconds a term), through the
+arithmetic of :mod:`trimtab.model.kernel` that the tuner runs on K candidates at once; numpy
+only in :meth:`RidgeModel.cost` and :meth:`RidgeModel.gradient` (:mod:`trimtab.model.batch`),
+which serve fitting and tests.
 """
 
 from __future__ import annotations
 
 import enum
 import math
-from collections.abc import Callable, Mapping, Sequence
-from typing import Any, TypeVar
+from collections.abc import Mapping, Sequence
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 
 from trimtab.errors import DataError, ModelError
+from trimtab.model.batch import batch_cost, batch_gradient
+from trimtab.model.kernel import shrink_step, standardise, why_refused
+from trimtab.model.ops import SCALAR, dot
+from trimtab.model.parts import shared
 from trimtab.model.ranges import remap
-from trimtab.model.terms import Scaler, TermSpec, as_float, as_sequence, float_list
+from trimtab.model.state import finite as _finite
+from trimtab.model.state import model_arguments
+from trimtab.model.state import positive_or_none as _positive_or_none
+from trimtab.model.terms import Scaler, TermSpec, as_sequence
 
-_SQRT_HALF_PI = math.sqrt(math.pi / 2.0)
-_STATE_KEYS = frozenset(
-    {
-        "spec", "scaler", "origin", "lam", "memory", "prior", "penalise_intercept",
-        "huber_delta", "normalised", "clip", "theta", "spread", "spread_decay", "updates",
-    }
-)
+__all__ = ["KEEP", "RidgeModel", "dot", "factory_prior", "shared"]
 
 
 class _Keep(enum.Enum):
@@ -33,55 +36,6 @@ class _Keep(enum.Enum):
 
 KEEP = _Keep.KEEP
 """Sentinel for :meth:`RidgeModel.with_settings`: leave this setting as it is."""
-
-
-def dot(a: Sequence[float], b: Sequence[float]) -> float:
-    """Σ a_j·b_j added strictly left to right from 0.0.
-
-    The order is part of the contract: the vectorised tuner (:mod:`trimtab.tune.vengine`) repeats
-    it on arrays to give the same bits, and ``sum()`` cannot promise an order (Python 3.12
-    changed its float algorithm to a compensated one).
-    """
-    acc = 0.0
-    for x, y in zip(a, b, strict=True):
-        acc += x * y
-    return acc
-
-
-_SHARED: dict[tuple[str, str], object] = {}
-_SHARED_LIMIT = 1024
-_Part = TypeVar("_Part", TermSpec, Scaler, tuple[float, ...])
-
-
-def shared(part: _Part) -> _Part:
-    """One instance of each equal spec, scaler or prior (immutable), for models to share.
-
-    Thousands of sensors of one configuration have equal specs, and equal scalers when
-    centre and scale are configured; each would otherwise hold its own copy. At most
-    ``_SHARED_LIMIT`` distinct parts are remembered; past that a part is used as it is.
-    """
-    key = (type(part).__name__, repr(part))  # repr, not ==: it tells -0.0 from 0.0
-    found = _SHARED.get(key)
-    if found is not None:
-        return found  # type: ignore[return-value]
-    if len(_SHARED) < _SHARED_LIMIT:
-        _SHARED[key] = part
-    return part
-
-
-def _parsed(d: Any, parse: Callable[[Any], _Part]) -> _Part:
-    """``shared(parse(d))``, skipping the parse (and its checks) for a form seen before."""
-    try:
-        key = ("form", repr(d))
-    except RecursionError:
-        return shared(parse(d))
-    found = _SHARED.get(key)
-    if found is not None:
-        return found  # type: ignore[return-value]
-    part = shared(parse(d))
-    if len(_SHARED) < _SHARED_LIMIT:
-        _SHARED[key] = part
-    return part
 
 
 def factory_prior(spec: TermSpec, scaler: Scaler) -> list[float]:
@@ -130,7 +84,7 @@ class RidgeModel:
     """
 
     __slots__ = (
-        "_centre", "_clip", "_huber_delta", "_lam", "_memory", "_normalised", "_origin",
+        "_centre", "_clip", "_delta", "_huber_delta", "_lam", "_memory", "_normalised", "_origin",
         "_penalise_intercept", "_prior", "_scale", "_scaler", "_spec", "_spread",
         "_spread_decay", "_theta", "_updates",
     )
@@ -177,6 +131,7 @@ class RidgeModel:
         self._prior = tuple(p)
         self._penalise_intercept = bool(penalise_intercept)
         self._huber_delta = _positive_or_none(huber_delta, "huber_delta")
+        self._delta = math.inf if self._huber_delta is None else self._huber_delta
         self._normalised = bool(normalised)
         self._clip = _positive_or_none(clip, "clip")
         th = list(self._prior) if theta is None else as_sequence(theta, "theta")
@@ -222,6 +177,10 @@ class RidgeModel:
     @property
     def prior(self) -> tuple[float, ...]:
         return self._prior
+
+    def weights(self) -> list[float]:
+        """θ itself, without a copy, for the learning kernel to read (never to mutate)."""
+        return self._theta
 
     @property
     def n_terms(self) -> int:
@@ -271,22 +230,15 @@ class RidgeModel:
         A non-finite input raises ModelError; so does a term that overflows to ±inf unless
         ``clip`` is set, in which case it is clipped like any other far-out value.
         """
-        return self.phi_of_row(self._spec.row(inputs, t, self._origin), t)
+        row = self._spec.row(inputs, t, self._origin)
+        # phi_of_row's two lines, not a call to it: a Python frame less on the per-sample path
+        phi, zmax, finite = standardise(SCALAR, row, self._centre, self._scale, self._clip)
+        return (phi, zmax) if finite else self._phi_checked(row, t)
 
     def phi_of_row(self, row: list[float], t: float) -> tuple[list[float], float]:
         """:meth:`phi` from the term values ``spec.row(inputs, t, origin)`` already computed."""
-        z = [(v - c) / s for v, c, s in zip(row, self._centre, self._scale, strict=True)]
-        total = sum(z)
-        if total - total == 0.0:
-            # Every term is finite (a NaN or infinity, in an input, the time or an overflowed
-            # term, makes the sum non-finite): the checks below cannot fire. The values are
-            # the same expressions as below, so the result is the same bits.
-            zmax = max(map(abs, z))
-            clip = self._clip
-            if clip is not None and zmax > clip:
-                z = [clip if x > clip else -clip if x < -clip else x for x in z]
-            return [1.0, *z], zmax
-        return self._phi_checked(row, t)
+        phi, zmax, finite = standardise(SCALAR, row, self._centre, self._scale, self._clip)
+        return (phi, zmax) if finite else self._phi_checked(row, t)
 
     def _phi_checked(self, row: list[float], t: float) -> tuple[list[float], float]:
         """:meth:`phi` term by term, naming the first term that is not finite."""
@@ -315,7 +267,8 @@ class RidgeModel:
         """ŷ = θ·φ."""
         if len(phi) != len(self._theta):
             raise ModelError(f"phi has {len(phi)} entries; the model has {len(self._theta)}")
-        return dot(self._theta, phi)
+        out: float = dot(self._theta, phi)
+        return out
 
     def predict(self, inputs: Mapping[str, float], t: float) -> float:
         """The corrected value for one reading's inputs at time t."""
@@ -332,39 +285,17 @@ class RidgeModel:
             raise ModelError(f"reference value {y} is not finite")
         if not (math.isfinite(alpha) and alpha >= 0.0):
             raise ModelError(f"step size alpha = {alpha} must be finite and ≥ 0")
-        theta = self._theta
-        # θ is always finite, so a finite r also proves every φ_j finite (inf·θ_j or 0·inf
-        # would make r inf or nan): one check instead of k.
-        r = dot(theta, phi) - y
-        if not math.isfinite(r):
-            raise ModelError(f"residual {r} is not finite (a non-finite feature or overflow)")
-        delta = self._huber_delta
-        psi = r if delta is None else max(-delta, min(delta, r))
-        a = alpha / (1.0 + dot(phi, phi)) if self._normalised else alpha
-        shrink = 1.0 - a * self._lam / self._memory
-        if shrink <= 0.0:
-            raise ModelError(
-                f"shrink factor 1 − aλ/m = 1 − {a}·{self._lam}/{self._memory} = {shrink} "
-                "is not positive; lower the step size or λ"
-            )
-        ap = a * psi
-        new = [
-            p + shrink * (w - p) - ap * f for w, p, f in zip(theta, self._prior, phi, strict=True)
-        ]
-        if not self._penalise_intercept:
-            new[0] = theta[0] - ap * phi[0]
-        # A non-finite weight makes the sum inf or nan (only absurd ~1e308 weights false-alarm).
-        if not math.isfinite(sum(new)):
-            raise ModelError("update would make a weight non-finite; state left unchanged")
-        spread = self._spread
-        obs = abs(r) * _SQRT_HALF_PI
-        spread = obs if spread == 0.0 else spread + self._spread_decay * (obs - spread)
-        if not math.isfinite(spread):
-            raise ModelError("update would make the residual spread non-finite")
-        self._theta = new
+        r, theta, spread, a, shrink, total, ok = shrink_step(
+            SCALAR, self._theta, self._prior, phi, y, alpha, self._lam, self._memory,
+            self._delta, self._normalised, self._penalise_intercept, self._spread,
+            self._spread_decay)
+        if not ok:
+            raise ModelError(why_refused(r, a, shrink, total, self._lam, self._memory))
+        self._theta = theta
         self._spread = spread
         self._updates += 1
-        return r
+        out: float = r
+        return out
 
     def step(self, inputs: Mapping[str, float], t: float, y: float, alpha: float) -> float:
         """One update from a reading's inputs and its reference y; returns the prior residual."""
@@ -455,39 +386,14 @@ class RidgeModel:
 
     def cost(self, Phi: NDArray[np.float64], y: NDArray[np.float64]) -> float:
         """J(θ) over the rows of Phi (features [1, z…]) and references y, as the class states."""
-        r, d = self._parts(Phi, y)
-        loss = float(np.sum(_rho(r, self._huber_delta)))
-        return (loss + self._lam * float(d @ d)) / (2.0 * self._memory)
+        return batch_cost(self._theta, self._prior, Phi, y, lam=self._lam, memory=self._memory,
+                          delta=self._huber_delta, penalise_intercept=self._penalise_intercept)
 
     def gradient(self, Phi: NDArray[np.float64], y: NDArray[np.float64]) -> NDArray[np.float64]:
         """∇J(θ) = (1/m) [ Φᵀψ(Φθ − y) + λ L (θ − p) ]."""
-        r, d = self._parts(Phi, y)
-        if self._huber_delta is not None:
-            r = np.clip(r, -self._huber_delta, self._huber_delta)
-        g: NDArray[np.float64] = (np.asarray(Phi, dtype=np.float64).T @ r + self._lam * d)
-        return g / self._memory
-
-    def _parts(
-        self, Phi: NDArray[np.float64], y: NDArray[np.float64]
-    ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-        """Residuals Φθ − y and the penalised distance L(θ − p)."""
-        Phi, y = self._batch(Phi, y)
-        theta = np.asarray(self._theta)
-        d = theta - np.asarray(self._prior)
-        if not self._penalise_intercept:
-            d[0] = 0.0
-        return Phi @ theta - y, d
-
-    def _batch(
-        self, Phi: NDArray[np.float64], y: NDArray[np.float64]
-    ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-        Phi = np.asarray(Phi, dtype=np.float64)
-        y = np.asarray(y, dtype=np.float64)
-        if Phi.ndim != 2 or Phi.shape[1] != len(self._theta) or y.shape != (Phi.shape[0],):
-            raise ModelError(
-                f"Phi {Phi.shape} and y {y.shape} do not fit a model of {len(self._theta)} weights"
-            )
-        return Phi, y
+        return batch_gradient(self._theta, self._prior, Phi, y, lam=self._lam,
+                              memory=self._memory, delta=self._huber_delta,
+                              penalise_intercept=self._penalise_intercept)
 
     # -- serialisation ---------------------------------------------------------------------------
 
@@ -501,64 +407,10 @@ class RidgeModel:
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> RidgeModel:
         """Rebuild from :meth:`to_dict`'s form; DataError names the malformed key."""
-        if not isinstance(d, Mapping):
-            raise DataError("model: expected an object")
-        missing = sorted(_STATE_KEYS - set(d))
-        if missing:
-            raise DataError(f"model: missing key {missing[0]!r}")
-        extra = sorted(set(d) - _STATE_KEYS)
-        if extra:
-            raise DataError(f"model: unknown key {extra[0]!r}")
-        spec = _parsed(d["spec"], TermSpec.from_dict)
-        scaler = _parsed(d["scaler"], Scaler.from_dict)
-        kw: dict[str, Any] = {
-            name: as_float(d[name], f"model.{name}")
-            for name in ("origin", "lam", "memory", "spread", "spread_decay")
-        }
-        for name in ("huber_delta", "clip"):
-            kw[name] = None if d[name] is None else as_float(d[name], f"model.{name}")
-        for name in ("penalise_intercept", "normalised"):
-            if not isinstance(d[name], bool):
-                raise DataError(f"model.{name}: expected true or false")
-            kw[name] = d[name]
-        updates = d["updates"]
-        if isinstance(updates, bool) or not isinstance(updates, int) or updates < 0:
-            raise DataError(f"model.updates: expected an integer ≥ 0, got {updates!r}")
-        kw["updates"] = updates
-        kw["prior"] = float_list(d["prior"], "model.prior")
-        kw["theta"] = float_list(d["theta"], "model.theta")
+        spec, scaler, kw = model_arguments(d)
         try:
             model = cls(spec, scaler, **kw)
         except ModelError as exc:
             raise DataError(f"model: {exc}") from exc
         model._prior = shared(model._prior)  # equal across sensors of one configuration
         return model
-
-
-def _rho(r: NDArray[np.float64], delta: float | None) -> NDArray[np.float64]:
-    """Squared loss r² or Huber's 2·ρ_δ (so that both share J's leading 1/(2m))."""
-    if delta is None:
-        out: NDArray[np.float64] = r * r
-        return out
-    a = np.abs(r)
-    out = np.where(a <= delta, r * r, 2.0 * delta * a - delta * delta)
-    return out
-
-
-def _finite(value: float, name: str) -> float:
-    try:
-        f = float(value)
-    except (TypeError, ValueError):
-        raise ModelError(f"{name} = {value!r} is not a number") from None
-    if not math.isfinite(f):
-        raise ModelError(f"{name} = {f} is not finite")
-    return f
-
-
-def _positive_or_none(value: float | None, name: str) -> float | None:
-    if value is None:
-        return None
-    f = _finite(value, name)
-    if f <= 0.0:
-        raise ModelError(f"{name} = {f} must be > 0 (or unset)")
-    return f

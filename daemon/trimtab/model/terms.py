@@ -106,7 +106,7 @@ class TermSpec:
             ) from None
         except (TypeError, ValueError) as exc:
             raise DataError(f"reading has a non-numeric input: {exc}") from None
-        out = list(v)
+        out = v  # derived terms follow the inputs; they read only the inputs' positions
         for i, j in self._product_idx:
             out.append(v[i] * v[j])
         for i in self._square_idx:
@@ -149,7 +149,7 @@ class TermSpec:
         """Rebuild from :meth:`to_dict`'s form; DataError names the malformed key."""
         if not isinstance(d, Mapping):
             raise DataError("spec: expected an object")
-        _check_keys(d, {"inputs", "products", "squares", "elapsed"}, "spec")
+        check_keys(d, {"inputs", "products", "squares", "elapsed"}, "spec")
         inputs = _str_list(d["inputs"], "spec.inputs")
         squares = _str_list(d["squares"], "spec.squares")
         products_raw = d["products"]
@@ -234,7 +234,7 @@ class Scaler:
         """Rebuild from :meth:`to_dict`'s form; DataError names the malformed key."""
         if not isinstance(d, Mapping):
             raise DataError("scaler: expected an object")
-        _check_keys(d, {"centre", "scale"}, "scaler")
+        check_keys(d, {"centre", "scale"}, "scaler")
         centre = float_list(d["centre"], "scaler.centre")
         scale = float_list(d["scale"], "scaler.scale")
         try:
@@ -243,7 +243,8 @@ class Scaler:
             raise DataError(str(exc)) from exc
 
 
-def _check_keys(d: Mapping[str, Any], expected: set[str], where: str) -> None:
+def check_keys(d: Mapping[str, Any], expected: set[str] | frozenset[str], where: str) -> None:
+    """DataError naming the first missing, then the first unknown key of ``d``."""
     missing = sorted(expected - set(d))
     if missing:
         raise DataError(f"{where}: missing key {missing[0]!r}")

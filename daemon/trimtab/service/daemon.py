@@ -22,7 +22,13 @@ from typing import TYPE_CHECKING, Any
 
 from trimtab.config import apply_reload
 from trimtab.engine.engine import Engine
-from trimtab.engine.wiring import make_codec, make_engine, status_topic, topic_templates
+from trimtab.engine.wiring import (
+    engine_settings,
+    make_codec,
+    make_engine,
+    status_topic,
+    topic_templates,
+)
 from trimtab.errors import ConfigError, DecodeError, StateError
 from trimtab.logs import configure_logging, get_logger
 from trimtab.messages import Reading, Reference
@@ -401,9 +407,9 @@ class Service:
             return True
         old = self.cfg
         saved = self.engine.state_dict()
-        self.engine.reconfigure(applied)
+        self.engine.reconfigure(engine_settings(applied))
         if not self.checkpoint():
-            self.engine.rewind(old, saved)
+            self.engine.rewind(engine_settings(old), saved)
             self.reloads["deferred"] += 1
             log.warning("config_reload_deferred", reason="checkpoint_not_written",
                         deferred=self.reloads["deferred"])

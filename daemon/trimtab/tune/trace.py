@@ -3,18 +3,19 @@
 Which readings are accepted, buffered and corrected, how references pair with them, when a
 sensor's scaler is fixed and its model created, which references wait for that model: none of
 it depends on α, λ, m, δ, the gate or the step's normalisation. :func:`record` runs the daemon's
-own :class:`~trimtab.engine.engine.Engine` over a stream once, with its two learning-dependent
-methods replaced by recorders:
+own :class:`~trimtab.engine.engine.Engine` over a stream once, with a recording
+:class:`~trimtab.engine.learner.Learner` in place of the learning kernel:
 
-* ``_correct`` (one corrected value a reading) records the reading's inputs, time and truth
+* ``correct`` (one corrected value a reading) records the reading's inputs, time and truth
   and where it falls relative to the model's creation, instead of predicting;
-* ``_learn`` (one paired reference, once its sensor has a model) records the paired inputs,
+* ``learn`` (one paired reference, once its sensor has a model) records the paired inputs,
   their time, the reference value and its time, and how many corrected values came before it,
   instead of gating and stepping.
 
 Everything else — decoding, pairing, duplicates, pending references, scaler fixing, counts —
-is the engine's own code, so the tuner cannot drift from the daemon there. The vectorised
-engine (:mod:`trimtab.tune.vengine`) then advances every candidate through these records.
+is the engine's own code, so the tuner cannot drift from the daemon there. The tuner then runs
+the learning kernel on every candidate at once through these records
+(:mod:`trimtab.tune.lanes`).
 """
 
 from __future__ import annotations
@@ -22,7 +23,7 @@ from __future__ import annotations
 import math
 from array import array
 from collections import Counter
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -30,8 +31,10 @@ from typing import Any
 import numpy as np
 
 from trimtab.config import Config
-from trimtab.engine.engine import Engine, SensorState
-from trimtab.engine.wiring import initial_models
+from trimtab.engine.engine import Engine
+from trimtab.engine.learner import Host
+from trimtab.engine.sensor import SensorState
+from trimtab.engine.wiring import engine_settings, initial_models
 from trimtab.errors import DataError, DecodeError
 from trimtab.messages import Corrected, Reading
 from trimtab.model.online import RidgeModel
@@ -109,27 +112,22 @@ class Trace:
                    for s in self.sensors.values() if s.outputs)
 
 
-class _Recorder(Engine):
-    """The daemon's engine with prediction and learning replaced by recording."""
+class _Recorder:
+    """A learner that records what the candidates' learning will see instead of learning."""
 
-    def __init__(self, cfg: Config, initial: Mapping[str, RidgeModel]) -> None:
-        for name in ("_correct", "_learn"):
-            if not callable(getattr(Engine, name, None)):
-                raise DataError(f"trimtab.engine.engine.Engine has no {name}(): the tuner's "
-                                "recorder no longer fits the engine")
-        super().__init__(cfg, initial)
+    def __init__(self) -> None:
         self.traces: dict[int, SensorTrace] = {}
 
-    def _trace(self, st: SensorState, sensor: str) -> SensorTrace:
+    def trace(self, st: SensorState, sensor: str) -> SensorTrace:
         tr = self.traces.get(id(st))
         if tr is None:
             tr = self.traces[id(st)] = SensorTrace(sensor, st.spec.inputs)
             tr.state = st
         return tr
 
-    def _correct(self, st: SensorState, r: Reading, raw: float,
-                 row: list[float] | None = None) -> Corrected:
-        tr = self._trace(st, r.sensor)
+    def correct(self, engine: Host, st: SensorState, r: Reading, raw: float,
+                row: list[float] | None) -> Corrected:
+        tr = self.trace(st, r.sensor)
         if st.model is None:
             if tr.unready != len(tr.out_t):
                 raise DataError(f"sensor {r.sensor}: a reading without a model after one with "
@@ -140,27 +138,27 @@ class _Recorder(Engine):
         tr.out_truth.append(math.nan if r.truth is None else r.truth)
         return _PLACEHOLDER
 
-    def _learn(self, st: SensorState, values: Sequence[float], t_pair: float, y: float,
-               ref_t: float) -> tuple[str, float | None]:
-        tr = self._find(st)
+    def learn(self, engine: Host, st: SensorState, values: Sequence[float], t_pair: float,
+              y: float, ref_t: float) -> tuple[str, float | None]:
+        tr = self._find(engine, st)
         assert st.model is not None
         current = st.model.scaler if tr.scaler is None else tr.scaler
-        # the engine's own move (Engine._learn), on the scaler alone: θ is per candidate
-        scaler = self.next_scaler(st, current)
+        # the engine's own move, on the scaler alone: θ is per candidate
+        scaler = engine.next_scaler(st, current)
         if scaler != current:
-            self.counts["scaler_moved"] += 1
+            engine.counts["scaler_moved"] += 1
         tr.scaler = scaler
         tr.refs.append(RefRecord(len(tr.out_t), tuple(float(v) for v in values), float(t_pair),
                                  float(y), float(ref_t), scaler))
         return LEARNED, None
 
-    def _find(self, st: SensorState) -> SensorTrace:
+    def _find(self, engine: Host, st: SensorState) -> SensorTrace:
         tr = self.traces.get(id(st))
         if tr is not None:
             return tr
-        for name, other in self._sensors.items():
-            if other is st:
-                return self._trace(st, name)
+        for name in engine.sensors():
+            if engine.sensor_state(name) is st:
+                return self.trace(st, name)
         raise DataError("recorder: a sensor state the engine does not hold")  # pragma: no cover
 
 
@@ -173,7 +171,8 @@ def record(cfg: Config, stream: str | Path, *,
     ``should_stop`` is asked every 4096 events; when it answers true, reading stops and the
     trace covers the events read so far (``complete`` is then false).
     """
-    rec = _Recorder(cfg, initial_models(cfg))
+    recorder = _Recorder()
+    rec = Engine(engine_settings(cfg), initial_models(cfg), learner=recorder)
     rejected: Counter[str] = Counter()
 
     def on_error(lineno: int, exc: DecodeError) -> None:
@@ -200,8 +199,9 @@ def record(cfg: Config, stream: str | Path, *,
     sensors: dict[str, SensorTrace] = {}
     models: dict[str, RidgeModel | None] = {}
     for name in rec.sensors():
-        st = rec._sensors[name]
-        tr = rec._trace(st, name)
+        st = rec.sensor_state(name)
+        assert st is not None
+        tr = recorder.trace(st, name)
         sensors[name] = tr
         models[name] = st.model
     counts = Counter({k: v for k, v in rec.counts.items() if k != f"reference_{LEARNED}"})

@@ -4,8 +4,9 @@ A run has two phases. :func:`trimtab.tune.trace.record` replays the stream once 
 daemon's engine with learning switched off, recording what every candidate shares (pairing,
 buffers, scaler, pending references). Then, for each sensor, the candidates whose features
 are standardised alike (they differ only when the model has an elapsed-time term, whose scale
-follows ``memory``) advance together through that record in a
-:class:`~trimtab.tune.vengine.VEngine`.
+follows ``memory``) advance together through that record as lanes of the learning kernel
+(:class:`~trimtab.tune.lanes.Lanes`): the daemon's own step, guards, band and correction, run
+on K-vectors.
 
 Scores (both prequential: every value is predicted before the model learns from any later
 reference):
@@ -28,94 +29,40 @@ part the rest; candidates are ranked by their tune RMSE only.
 from __future__ import annotations
 
 import copy
-import json
 import math
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
-from pathlib import Path
+from dataclasses import dataclass
 from typing import Any, Literal
 
 import numpy as np
 from numpy.typing import NDArray
 
-from trimtab.config import Config
-from trimtab.engine.engine import elapsed_scale_days
 from trimtab.engine.guards import Guard
+from trimtab.engine.settings import band_of, elapsed_scale_days, guard_settings
 from trimtab.errors import DataError
 from trimtab.model.online import RidgeModel
 from trimtab.model.stability import STEP_BOUND, step_check
 from trimtab.model.terms import Scaler
-from trimtab.tune.grid import TERMS, TUNED, Candidate
-from trimtab.tune.trace import SensorTrace, Trace, record
-from trimtab.tune.vengine import STATUSES, Common, Settings, VEngine, phi_rows
+from trimtab.tune.grid import Candidate
+from trimtab.tune.lanes import COUNTED, Lanes, ModelSettings, guard_lanes, phi_block, stack
+from trimtab.tune.scores import Against, Outcome, Score, Tally, TuneResult
+from trimtab.tune.trace import SensorTrace, Trace
 
-__all__ = ["Against", "Outcome", "Score", "TuneResult", "Tuner", "snippet"]
+__all__ = ["Against", "Candidates", "Outcome", "Score", "TuneResult", "Tuner"]
 
-Against = Literal["truth", "references", "spans"]
 CHUNK = 4096
 """Most readings predicted in one block (bounds a block's K × B arrays)."""
 
 
-@dataclass(frozen=True, slots=True)
-class Score:
-    """Sum of squared errors, sum of errors and their count, in stream order."""
-
-    sse: float = 0.0
-    total: float = 0.0
-    n: int = 0
-
-    @property
-    def rmse(self) -> float | None:
-        """√(sse / n), or None with no errors to score."""
-        return math.sqrt(self.sse / self.n) if self.n else None
-
-    @property
-    def bias(self) -> float | None:
-        """Mean error (corrected − truth, or prediction − reference), or None."""
-        return self.total / self.n if self.n else None
-
-
 @dataclass(slots=True)
-class Outcome:
-    """One evaluated candidate: scores, guard tallies and stability margins."""
+class Candidates:
+    """The candidates of one scaler group of one sensor: their lanes and their scores."""
 
-    candidate: Candidate
-    tune: Score
-    test: Score
-    per_sensor: dict[str, tuple[Score, Score]]
-    rollbacks: int
-    gated: int
-    margin: float
-    """Smallest step-stability margin (bound / actual) of stability.py over the config's sensor
-    settings, evaluated at this candidate's α and λ (the largest it ever uses)."""
-    reached: float
-    """2 / the largest a·(λ/m + ‖φ‖²) of any step it took: how near the steps actually came."""
-    folds: list[Score] = field(default_factory=list)
-    """The tune part's score in each of its consecutive time blocks (rolling origin)."""
+    lanes: Lanes
+    tally: Tally
 
-    def fold_spread(self) -> tuple[float, float] | None:
-        """The smallest and largest fold RMSE, or None when no fold was scored."""
-        got = [s.rmse for s in self.folds if s.rmse is not None]
-        return (min(got), max(got)) if got else None
-
-
-@dataclass(slots=True)
-class TuneResult:
-    """The ranked outcomes (best first), the refused candidates and what the run covered."""
-
-    against: Against
-    split: float
-    split_t: float | None
-    outcomes: list[Outcome]
-    refused: list[Candidate]
-    events: int
-    complete: bool
-    sensors: list[str] = field(default_factory=list)
-
-    @property
-    def best(self) -> Outcome | None:
-        """The candidate with the lowest tune RMSE, if any was scored."""
-        return self.outcomes[0] if self.outcomes and self.outcomes[0].tune.n else None
+    def __len__(self) -> int:
+        return len(self.lanes)
 
 
 def _scaler_for(tr: SensorTrace, base: RidgeModel, cand: Candidate) -> Scaler:
@@ -124,7 +71,7 @@ def _scaler_for(tr: SensorTrace, base: RidgeModel, cand: Candidate) -> Scaler:
     settings = cand.config.sensor_settings(tr.sensor)
     if settings.initial_state is not None or not base.spec.elapsed:
         return base.scaler
-    scale = (*base.scaler.scale[:-1], elapsed_scale_days(cand.config))
+    scale = (*base.scaler.scale[:-1], elapsed_scale_days(cand.config.learning))
     return Scaler(base.scaler.centre, scale)
 
 
@@ -149,7 +96,7 @@ class Tuner:
         self.split_t = (None if t0 is None or t1 is None or split >= 1.0
                         else t0 + split * (t1 - t0))
         # sensor → [(engine, candidate positions in self.valid)]
-        self.engines: dict[str, list[tuple[VEngine, list[int]]]] = {}
+        self.engines: dict[str, list[tuple[Candidates, list[int]]]] = {}
         self.raw_scores: dict[str, tuple[Score, Score]] = {}
 
     # -- running ---------------------------------------------------------------------------------
@@ -183,36 +130,21 @@ class Tuner:
         return groups
 
     def _engine(self, tr: SensorTrace, base: RidgeModel, scaler: Scaler,
-                members: list[int]) -> VEngine:
+                members: list[int]) -> Candidates:
         d = base.to_dict()
         d["scaler"] = scaler.to_dict()
         template = RidgeModel.from_dict(d)
-        cfgs = [self.valid[p].config for p in members]
-        lcs = [c.learning for c in cfgs if c is not None]
-        settings = Settings(
-            alpha=np.array([lc.alpha for lc in lcs]), lam=np.array([lc.lam for lc in lcs]),
-            memory=np.array([float(lc.memory) for lc in lcs]),
-            delta=np.array([math.inf if lc.huber_delta is None else lc.huber_delta
-                            for lc in lcs]),
-            normalised=np.array([lc.normalised for lc in lcs]),
-            gate_k=np.array([lc.gate_k for lc in lcs]),
-            rollback_factor=np.array([lc.rollback_factor for lc in lcs]),
-            alpha_recovery=np.array([lc.alpha_recovery for lc in lcs]),
-            alpha_min=np.array([lc.alpha_min for lc in lcs]),
-            alpha_max=np.array([lc.alpha_max for lc in lcs]),
-            step_gap=np.array([lc.step_gap if lc.step_adapt == "gap" else math.inf
-                               for lc in lcs]),
-        )
+        lcs = [c.learning for c in (self.valid[p].config for p in members) if c is not None]
+        ms = ModelSettings(lam=stack([lc.lam for lc in lcs]),
+                           memory=stack([float(lc.memory) for lc in lcs]),
+                           delta=stack([math.inf if lc.huber_delta is None else lc.huber_delta
+                                        for lc in lcs]),
+                           normalised=stack([lc.normalised for lc in lcs]))
         cfg = self.trace.config
-        lc = cfg.learning
         assert tr.state is not None
-        common = Common(gate_run=lc.gate_run, warmup=lc.warmup, snapshot_every=lc.snapshot_every,
-                        cap=cfg.output.cap, warm=tr.state.warm,
-                        error_window=lc.error_window, shift_after=lc.shift_after,
-                        band_coverage=cfg.output.band_coverage, band_gain=cfg.output.band_gain)
         n = template.n_terms
         scalers = None
-        if lc.scaler == "follow":
+        if cfg.learning.scaler == "follow":
             # the recorder's elapsed scale is the base config's; this group's may differ
             scalers = [r.scaler if not template.spec.elapsed else
                        Scaler(r.scaler.centre, (*r.scaler.scale[:-1], scaler.scale[-1]))
@@ -225,15 +157,19 @@ class Tuner:
             rows.append(moved.phi(dict(zip(tr.inputs, r.values, strict=True)), r.t_pair)[0])
         ref_phi = np.array(rows).reshape(len(tr.refs), n)
         ref_y = np.array([r.y for r in tr.refs], dtype=np.float64)
-        ve = VEngine(template, settings, common, ref_phi, ref_y, scalers, folds=self.folds)
+        lanes = Lanes(len(lcs), template, guard_lanes([guard_settings(lc) for lc in lcs]), ms,
+                      band_of(cfg.output), cfg.output.cap, tr.state.warm, ref_phi, ref_y,
+                      scalers)
+        tally = Tally(len(lanes), self.folds)
         if self.against == "spans":
             pos = np.array([r.pos for r in tr.refs], dtype=np.int64)
-            ve.ref_w = np.maximum(1, np.diff(pos, prepend=0))
-        return ve
+            tally.ref_w = np.maximum(1, np.diff(pos, prepend=0))
+        return Candidates(lanes, tally)
 
-    def _drive(self, ve: VEngine, tr: SensorTrace, should_stop: Callable[[], bool],
+    def _drive(self, group: Candidates, tr: SensorTrace, should_stop: Callable[[], bool],
                tick: Callable[[int], None]) -> bool:
-        """Advance one engine through a sensor's record; False when told to stop."""
+        """Advance one group of candidates through a sensor's record; False when told to stop."""
+        lanes, tally = group.lanes, group.tally
         width = len(tr.inputs)
         t = np.frombuffer(tr.out_t, dtype=np.float64)
         X = np.frombuffer(tr.out_x, dtype=np.float64).reshape(-1, width)
@@ -243,8 +179,8 @@ class Tuner:
                 else (t >= self.split_t).astype(np.int8))
         fold = self._folds(t)
         ready = tr.unready
-        follow = ve.ref_scalers is not None
-        phi = None if follow else phi_rows(ve.model, X[ready:], t[ready:])
+        follow = lanes.ref_scalers is not None
+        phi = None if follow else phi_block(lanes.model, X[ready:], t[ready:])
         pos = 0
         with np.errstate(all="ignore"):
             for i in range(len(tr.refs) + 1):
@@ -254,18 +190,19 @@ class Tuner:
                     if pos < ready:
                         block = None
                     elif phi is None:
-                        block = phi_rows(ve.model, X[pos:end], t[pos:end], ve.scaler)
+                        block = phi_block(lanes.model, X[pos:end], t[pos:end], lanes.scaler)
                     else:
-                        block = phi[pos - ready : end - ready]
-                    ve.score_outputs(block, raw[pos:end], truth[pos:end], part[pos:end],
-                                     fold[pos:end])
+                        block = [f[pos - ready : end - ready] for f in phi]
+                    value = lanes.corrected(block, raw[pos:end])
+                    tally.outputs(value, truth[pos:end], part[pos:end], fold[pos:end])
                     tick(end - pos)
                     pos = end
                     if should_stop():
                         return False
                 if i < len(tr.refs):
                     ref = tr.refs[i]
-                    ve.reference(i, ref.t, self._part(ref.t), self._fold(ref.t))
+                    r = lanes.reference(i, ref.t)
+                    tally.reference(i, r, self._part(ref.t), self._fold(ref.t))
                     tick(1)
                     if i % 64 == 63 and should_stop():
                         return False
@@ -313,9 +250,9 @@ class Tuner:
                 continue
             self.engines[name] = []
             for scaler, members in self._groups(tr, base).items():
-                ve = self._engine(tr, base, scaler, members)
-                self.engines[name].append((ve, members))
-                if not self._drive(ve, tr, stop, tick):
+                group = self._engine(tr, base, scaler, members)
+                self.engines[name].append((group, members))
+                if not self._drive(group, tr, stop, tick):
                     complete = False
                     break
             if not complete:
@@ -334,11 +271,12 @@ class Tuner:
                 if pos not in members:
                     continue
                 j = members.index(pos)
+                ta = ve.tally
                 if self.against == "truth":
-                    sse, tot, n = ve.out_sse, ve.out_sum, ve.out_n
+                    sse, tot, n = ta.out_sse, ta.out_sum, ta.out_n
                     parts = [Score(float(sse[p, j]), float(tot[p, j]), int(n[p])) for p in (0, 1)]
                 else:
-                    sse, tot, nn = ve.ref_sse, ve.ref_sum, ve.ref_n
+                    sse, tot, nn = ta.ref_sse, ta.ref_sum, ta.ref_n
                     parts = [Score(float(sse[p, j]), float(tot[p, j]), int(nn[p, j]))
                              for p in (0, 1)]
                 out[name] = (parts[0], parts[1])
@@ -362,9 +300,9 @@ class Tuner:
             for ve, members in engines:
                 if pos in members:
                     j = members.index(pos)
-                    rollbacks += int(ve.rollbacks[j])
-                    gated += int(ve.counts["gated"][j])
-                    gain = max(gain, float(ve.max_gain[j]))
+                    rollbacks += int(ve.lanes.rollbacks[j])
+                    gated += int(ve.lanes.counts["gated"][j])
+                    gain = max(gain, float(ve.lanes.max_gain[j]))
         assert cand.config is not None
         lc = cand.config.learning
         margin = min(step_check(label, terms=s.term_count(), alpha_max=lc.alpha_max,
@@ -396,12 +334,13 @@ class Tuner:
                     continue
                 j = members.index(pos)
                 for f in range(self.folds):
+                    ta = ve.tally
                     if self.against == "truth":
-                        sse[f] += float(ve.fold_out_sse[f, j])
-                        n[f] += int(ve.fold_out_n[f])
+                        sse[f] += float(ta.fold_out_sse[f, j])
+                        n[f] += int(ta.fold_out_n[f])
                     else:
-                        sse[f] += float(ve.fold_ref_sse[f, j])
-                        n[f] += int(ve.fold_ref_n[f, j])
+                        sse[f] += float(ta.fold_ref_sse[f, j])
+                        n[f] += int(ta.fold_ref_n[f, j])
         return [Score(a, 0.0, b) for a, b in zip(sse, n, strict=True)]
 
     def _result(self, complete: bool) -> TuneResult:
@@ -426,113 +365,12 @@ class Tuner:
             for ve, members in self.engines.get(name, []):
                 if pos in members:
                     j = members.index(pos)
-                    d.update(ve.candidate_state(j))
-                    tallies = {f"reference_{s}": int(ve.counts[s][j]) for s in STATUSES}
-                    tallies["prediction_non_finite"] = int(ve.prediction_non_finite[j])
+                    d.update(ve.lanes.candidate_state(j))
+                    tallies = {f"reference_{s}": int(ve.lanes.counts[s][j]) for s in COUNTED}
+                    tallies["prediction_non_finite"] = int(ve.lanes.prediction_non_finite[j])
                     for key, v in tallies.items():
                         counts[key] = counts.get(key, 0) + v
         state["counts"] = {k: v for k, v in counts.items() if v}
         return state
 
 
-def _toml_value(v: object) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, str):
-        return f'"{v}"'
-    return repr(v)
-
-
-def snippet(outcome: Outcome) -> str:
-    """The recommended settings as ``[learning]`` (and ``[sensors.defaults]`` terms) tables."""
-    s = outcome.candidate.settings
-    lines = ["[learning]"]
-    for key in TUNED:
-        if key in TERMS:
-            continue
-        v = s[key]
-        if v is None:
-            lines.append(f"# {key} unset (squared loss)")
-        else:
-            lines.append(f"{key} = {_toml_value(v)}")
-    lines.append("[sensors.defaults]")
-    for key in TERMS:
-        v = s[key]
-        assert isinstance(v, tuple)
-        lines.append(f"{key} = {json.dumps([list(x) if isinstance(x, tuple) else x for x in v])}")
-    return "\n".join(lines)
-
-
-def scaler_group(cfg: Config) -> tuple[Any, ...]:
-    """What a candidate's recorded pass depends on beyond pairing: its terms and how its
-    scaler moves."""
-    lc = cfg.learning
-    d = cfg.sensors.defaults
-    terms = (tuple(tuple(p) for p in d.products), tuple(d.squares))
-    return (terms, "fixed") if lc.scaler == "fixed" else (
-        terms, "follow", lc.scaler_span, lc.scaler_width)
-
-
-@dataclass(slots=True)
-class GroupedRun:
-    """One tuning run over candidates whose scalers move differently: one record pass each."""
-
-    result: TuneResult
-    tuners: list[Tuner]
-
-    def engine_state(self, index: int) -> dict[str, Any]:
-        """The engine state ``trimtab replay --state-out`` leaves with candidate ``index``."""
-        for tuner in self.tuners:
-            if any(c.index == index for c in tuner.valid):
-                return tuner.engine_state(index)
-        raise DataError(f"candidate {index} was not evaluated")
-
-
-def tune_stream(stream: str | Path, candidates: Sequence[Candidate], *, split: float = 0.7,
-                against: Against | Literal["auto"] = "auto",
-                should_stop: Callable[[], bool] | None = None,
-                read_progress: Callable[[int], None] | None = None,
-                progress: Callable[[float], None] | None = None,
-                base: Config | None = None, folds: int = 3) -> GroupedRun:
-    """Record the stream once per scaler group and evaluate each group's candidates on it.
-
-    Pairing, buffers and the moves of a followed scaler depend on no other tuned setting, so
-    candidates of one group share one record (:func:`trimtab.tune.trace.record`) and advance
-    together; the results are merged and ranked as one.
-    """
-    groups: dict[tuple[Any, ...], list[Candidate]] = {}
-    for c in candidates:
-        if c.config is not None:
-            groups.setdefault(scaler_group(c.config), []).append(c)
-    refused = [c for c in candidates if not c.valid]
-    if not groups:
-        if base is None:
-            raise DataError("no candidate was valid and no config was given to read the stream")
-        trace = record(base, stream, should_stop=should_stop, progress=read_progress)
-        tuner = Tuner(trace, refused, split=split, against=against, folds=folds)
-        return GroupedRun(tuner.run(should_stop=should_stop), [tuner])
-    tuners: list[Tuner] = []
-    results: list[TuneResult] = []
-    for i, members in enumerate(groups.values()):
-        assert members[0].config is not None
-        trace = record(members[0].config, stream, should_stop=should_stop,
-                       progress=read_progress)
-        tuner = Tuner(trace, members + (refused if i == 0 else []), split=split,
-                      against=against, folds=folds)
-        tuners.append(tuner)
-        done = len(results)
-
-        def part(f: float, done: int = done) -> None:
-            if progress is not None:
-                progress((done + f) / len(groups))
-
-        results.append(tuner.run(should_stop=should_stop, progress=part))
-        if not results[-1].complete:
-            break
-    first = results[0]
-    outcomes = [o for r in results for o in r.outcomes]
-    outcomes.sort(key=lambda o: (o.tune.rmse is None, o.tune.rmse or 0.0, o.candidate.index))
-    merged = TuneResult(first.against, first.split, first.split_t, outcomes, refused,
-                        first.events, all(r.complete for r in results) and
-                        len(results) == len(groups), first.sensors)
-    return GroupedRun(merged, tuners)
