@@ -16,7 +16,6 @@ from typing import Any
 from trimtab.commands.options import deprecated
 from trimtab.config import RELOADABLE, Config, file_problems, load_config
 from trimtab.config.figures import derived_figures
-from trimtab.config import RELOADABLE, Config, file_problems, load_config
 from trimtab.engine.settings import configured_prior, configured_scaler, prior_mode, spec_of
 from trimtab.engine.wiring import initial_models
 from trimtab.errors import ConfigError, EncodeError

@@ -22,8 +22,7 @@ from trimtab.model.ranges import RangeTracker
 from trimtab.model.terms import Scaler, TermSpec
 
 if TYPE_CHECKING:
-    from trimtab.config import SensorSettings
-    from trimtab.config import LearningSettings, OutputSettings, PairingSettings
+    from trimtab.config import LearningSettings, OutputSettings, PairingSettings, SensorSettings
 
 __all__ = ["DAY", "EngineSettings", "Routing", "band_of", "configured_prior",
            "configured_scaler", "elapsed_scale_days", "guard_settings", "prior_mode",

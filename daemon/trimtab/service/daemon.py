@@ -73,6 +73,8 @@ PUBLISH_OUTCOMES = {"sent": "handed_to_client", "delivered": "delivered",
                     "deferred": "publish_deferred", "failed": "publish_failed",
                     "refused": "refused_by_broker"}
 """Metrics outcome of ``trimtab_messages_published_total`` → outbox counter."""
+
+
 class Service:
     """One daemon: owns the engine, the state store and the transport."""
 
