@@ -9,7 +9,8 @@ from __future__ import annotations
 
 import re
 import zlib
-from typing import Annotated, Any, Literal
+from collections.abc import Callable
+from typing import Annotated, Any, Literal, TypeVar
 
 from pydantic import (
     AfterValidator,
@@ -52,9 +53,23 @@ __all__ = [
 ]
 
 INPUT_NAME_PATTERN = r"^[a-z][a-z0-9_]{0,31}$"
-ALLOWED_MEMO = 100_000
-"""Sensor ids whose "served here?" answer a config remembers (the answer never changes for one
-config; a reload makes a new config)."""
+ROUTES_MEMO = 100_000
+"""Sensor and stream ids whose routing answers a config remembers (they never change for one
+config; a reload makes a new config). Bounded, so made-up ids cannot grow memory."""
+
+
+K = TypeVar("K")
+V = TypeVar("V")
+
+
+def _remember(memo: dict[K, V], key: K, compute: Callable[[K], V]) -> V:
+    """``compute(key)``, answered from ``memo`` when it holds the key; kept while it has room."""
+    if key in memo:
+        return memo[key]
+    answer = compute(key)
+    if len(memo) < ROUTES_MEMO:
+        memo[key] = answer
+    return answer
 
 
 def _sensor_id(value: str) -> str:
@@ -267,7 +282,9 @@ class SensorsSettings(Section):
     _resolved: dict[str, SensorSettings] = PrivateAttr(default_factory=dict)
     _targets: dict[str, tuple[str, ...]] = PrivateAttr(default_factory=dict)
     _served: dict[str, bool] = PrivateAttr(default_factory=dict)
-    """:meth:`allowed`'s answers, asked for every message; at most ``ALLOWED_MEMO`` of them."""
+    _routes: dict[str, tuple[str, ...]] = PrivateAttr(default_factory=dict)
+    """:meth:`allowed`'s and :meth:`targets`' answers, asked for every message; at most
+    ``ROUTES_MEMO`` of each (the answers never change for one config)."""
 
     @field_validator("pattern")
     @classmethod
@@ -284,13 +301,21 @@ class SensorsSettings(Section):
 
         ``exclude`` and ``incoming`` win over the pattern; ids are never in either.
         """
-        known = self._served.get(sensor_id)
-        if known is not None:
-            return known
-        answer = self._allowed(sensor_id)
-        if len(self._served) < ALLOWED_MEMO:  # bounded: hostile ids cannot grow it
-            self._served[sensor_id] = answer
-        return answer
+        return _remember(self._served, sensor_id, self._allowed)
+
+    def targets(self, source_id: str) -> tuple[str, ...]:
+        """The sensors a reference stream serves here: its shared list, else itself if served.
+
+        Sensors of a shared list that another daemon serves (another shard, excluded, or still
+        incoming) are left out.
+        """
+        return _remember(self._routes, source_id, self._targets_of)
+
+    def _targets_of(self, source_id: str) -> tuple[str, ...]:
+        shared = self._targets.get(source_id)
+        if shared is not None:
+            return tuple(s for s in shared if self.allowed(s))
+        return (source_id,) if self.allowed(source_id) else ()
 
     def _allowed(self, sensor_id: str) -> bool:
         if sensor_id in self.ids:

@@ -127,10 +127,7 @@ class Config(Section):
         Sensors of a shared list that another daemon serves (another shard, excluded, or still
         incoming) are left out.
         """
-        shared = self.sensors._targets.get(source_id)
-        if shared is not None:
-            return tuple(s for s in shared if self.sensor_allowed(s))
-        return (source_id,) if self.sensor_allowed(source_id) else ()
+        return self.sensors.targets(source_id)
 
     def reference_incoming(self, source_id: str) -> bool:
         """Whether a reference stream serves a sensor listed in ``sensors.incoming``."""

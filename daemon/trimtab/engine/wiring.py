@@ -7,7 +7,6 @@ the config tree itself.
 
 from __future__ import annotations
 
-from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -63,32 +62,12 @@ def initial_models(cfg: Config) -> dict[str, RidgeModel]:
     return models
 
 
-ROUTES_REMEMBERED = 4096
-"""Reference stream ids whose targets an engine's routing remembers, at most."""
-
-
-def _remembered(targets: Callable[[str], tuple[str, ...]]) -> Callable[[str], tuple[str, ...]]:
-    """``targets`` answered once per stream id (the config is immutable), for at most
-    ROUTES_REMEMBERED ids, so made-up ids cannot grow memory."""
-    seen: dict[str, tuple[str, ...]] = {}
-
-    def remembered(source: str) -> tuple[str, ...]:
-        found = seen.get(source)
-        if found is None:
-            found = targets(source)
-            if len(seen) < ROUTES_REMEMBERED:
-                seen[source] = found
-        return found
-
-    return remembered
-
-
 def engine_settings(cfg: Config) -> EngineSettings:
     """What an engine takes from a config: its sections and the routing of sensors."""
     return EngineSettings(
         learning=cfg.learning, output=cfg.output, pairing=cfg.pairing,
         routing=Routing(settings=cfg.sensor_settings, serves=cfg.sensor_allowed,
-                        targets=_remembered(cfg.reference_targets),
+                        targets=cfg.reference_targets,
                         max_sensors=cfg.sensors.max),
     )
 
